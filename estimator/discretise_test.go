@@ -13,8 +13,8 @@ import (
 	"gonum.org/v1/gonum/mat"
 )
 
-// maxAbsDiff returns the largest entry of |got − want|.
-func maxAbsDiff(got, want mat.Matrix) float64 {
+// discretiseMaxDiff returns the largest entry of |got − want|.
+func discretiseMaxDiff(got, want mat.Matrix) float64 {
 	r, c := want.Dims()
 	gr, gc := got.Dims()
 	if r != gr || c != gc {
@@ -110,17 +110,17 @@ func TestDiscretiseClosedForms(t *testing.T) {
 				qc = tc.qc
 			}
 			ad, bd, qd := Discretise(tc.a, tc.b, qc, tc.ts)
-			if d := maxAbsDiff(ad, tc.ad); d > tc.tol {
+			if d := discretiseMaxDiff(ad, tc.ad); d > tc.tol {
 				t.Errorf("Ad = %v, want %v (max diff %.3g)", mat.Formatted(ad), mat.Formatted(tc.ad), d)
 			}
-			if d := maxAbsDiff(bd, tc.bd); d > tc.tol {
+			if d := discretiseMaxDiff(bd, tc.bd); d > tc.tol {
 				t.Errorf("Bd = %v, want %v (max diff %.3g)", mat.Formatted(bd), mat.Formatted(tc.bd), d)
 			}
 			switch {
 			case tc.qc == nil && qd != nil:
 				t.Errorf("Qd = %v for nil Qc, want nil", mat.Formatted(qd))
 			case tc.qd != nil:
-				if d := maxAbsDiff(qd, tc.qd); d > tc.tol*math.Max(1, mat.Norm(tc.qd, math.Inf(1))) {
+				if d := discretiseMaxDiff(qd, tc.qd); d > tc.tol*math.Max(1, mat.Norm(tc.qd, math.Inf(1))) {
 					t.Errorf("Qd = %v, want %v (max diff %.3g)", mat.Formatted(qd), mat.Formatted(tc.qd), d)
 				}
 			}
@@ -167,7 +167,7 @@ func TestExpStiff(t *testing.T) {
 			want.Set(i, j, 0.25)
 		}
 	}
-	if d := maxAbsDiff(ad, want); d > 0.25*1e-13 {
+	if d := discretiseMaxDiff(ad, want); d > 0.25*1e-13 {
 		t.Errorf("expm = %v, want 0.25·ones (max diff %.3g)", mat.Formatted(ad), d)
 	}
 }
@@ -187,7 +187,7 @@ type discretiseFixture struct {
 	} `json:"cases"`
 }
 
-func denseOf(rows [][]float64) *mat.Dense {
+func discretiseDense(rows [][]float64) *mat.Dense {
 	m := mat.NewDense(len(rows), len(rows[0]), nil)
 	for i, r := range rows {
 		m.SetRow(i, r)
@@ -214,7 +214,7 @@ func TestDiscretiseFixture(t *testing.T) {
 	}
 	for _, c := range fx.Cases {
 		t.Run(c.Name, func(t *testing.T) {
-			qc := denseOf(c.Qc)
+			qc := discretiseDense(c.Qc)
 			n, _ := qc.Dims()
 			qcs := mat.NewSymDense(n, nil)
 			for i := 0; i < n; i++ {
@@ -222,7 +222,7 @@ func TestDiscretiseFixture(t *testing.T) {
 					qcs.SetSym(i, j, qc.At(i, j))
 				}
 			}
-			ad, bd, qd := Discretise(denseOf(c.A), denseOf(c.B), qcs, c.Ts)
+			ad, bd, qd := Discretise(discretiseDense(c.A), discretiseDense(c.B), qcs, c.Ts)
 			for _, chk := range []struct {
 				name      string
 				got, want mat.Matrix
@@ -232,12 +232,12 @@ func TestDiscretiseFixture(t *testing.T) {
 				// about 2e-16 for Ad and Bd, at most 2.3e-15 for Qd; one Van
 				// Loan exponential over the whole long sample is off by
 				// 6.5e-13 and must fail here.
-				{"Ad", ad, denseOf(c.Ad), 1e-14},
-				{"Bd", bd, denseOf(c.Bd), 1e-14},
-				{"Qd", qd, denseOf(c.Qd), 1e-13},
+				{"Ad", ad, discretiseDense(c.Ad), 1e-14},
+				{"Bd", bd, discretiseDense(c.Bd), 1e-14},
+				{"Qd", qd, discretiseDense(c.Qd), 1e-13},
 			} {
 				scale := mat.Norm(chk.want, math.Inf(1))
-				if d := maxAbsDiff(chk.got, chk.want); d > chk.rel*scale {
+				if d := discretiseMaxDiff(chk.got, chk.want); d > chk.rel*scale {
 					t.Errorf("%s differs from scipy by %.3g (scale %.3g)\ngot  %v\nwant %v",
 						chk.name, d, scale, mat.Formatted(chk.got), mat.Formatted(chk.want))
 				}

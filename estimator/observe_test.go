@@ -60,7 +60,7 @@ type wantMode struct {
 	dir        []float64 // expected Direction
 }
 
-func ptr(v float64) *float64 { return &v }
+func wantSigma(v float64) *float64 { return &v }
 
 func TestCheckObservability(t *testing.T) {
 	r2 := 1 / math.Sqrt2
@@ -98,7 +98,7 @@ func TestCheckObservability(t *testing.T) {
 			c:    mat.NewDense(1, 2, []float64{1, 0}),
 			rank: 1, observable: false, detectable: true,
 			modes: []wantMode{
-				{eig: 1.1, observable: true, stable: false, sigma: ptr(0.6 / 3.2), dir: []float64{1, 0}},
+				{eig: 1.1, observable: true, stable: false, sigma: wantSigma(0.6 / 3.2), dir: []float64{1, 0}},
 				{eig: 0.5, observable: false, stable: true, dir: []float64{0, 1}},
 			},
 		},
@@ -123,7 +123,7 @@ func TestCheckObservability(t *testing.T) {
 			rank: 2, observable: true, detectable: true,
 			modes: []wantMode{
 				{eig: 0.9, observable: true, stable: true, dir: []float64{1, 0}},
-				{eig: 0.5, observable: true, weak: true, stable: true, sigma: ptr(1.5474611514754335e-09), dir: []float64{0, 1}},
+				{eig: 0.5, observable: true, weak: true, stable: true, sigma: wantSigma(1.5474611514754335e-09), dir: []float64{0, 1}},
 			},
 		},
 		{
@@ -158,8 +158,8 @@ func TestCheckObservability(t *testing.T) {
 			// [0.8, 0.6]] (A → QAQᵀ, C → CQᵀ): rounding now splits the double
 			// eigenvalue, which must still be reported once, unobservable
 			// along Q·e1 = (0.6, 0.8).
-			name: "Jordan block, start measured, rotated",
-			a: rotated(mat.NewDense(2, 2, []float64{0.6, -0.8, 0.8, 0.6}),
+			name: "Jordan block, start measured, rotatedBy",
+			a: rotatedBy(mat.NewDense(2, 2, []float64{0.6, -0.8, 0.8, 0.6}),
 				mat.NewDense(2, 2, []float64{0.5, 1, 0, 0.5})),
 			c:    mat.NewDense(1, 2, []float64{-0.8, 0.6}), // [0, 1]·Qᵀ
 			rank: 1, observable: false, detectable: true,
@@ -169,8 +169,8 @@ func TestCheckObservability(t *testing.T) {
 			// The block of three turned by the orthogonal, symmetric
 			// Q = [[1, 2, 2], [2, 1, −2], [2, −2, 1]]/3; C = [0, 1, 0]·Qᵀ,
 			// unobservable along Q·e1 = (1, 2, 2)/3.
-			name: "Jordan block of three, middle measured, rotated",
-			a: rotated(mat.NewDense(3, 3, []float64{1. / 3, 2. / 3, 2. / 3, 2. / 3, 1. / 3, -2. / 3, 2. / 3, -2. / 3, 1. / 3}),
+			name: "Jordan block of three, middle measured, rotatedBy",
+			a: rotatedBy(mat.NewDense(3, 3, []float64{1. / 3, 2. / 3, 2. / 3, 2. / 3, 1. / 3, -2. / 3, 2. / 3, -2. / 3, 1. / 3}),
 				mat.NewDense(3, 3, []float64{0.7, 1, 0, 0, 0.7, 1, 0, 0, 0.7})),
 			c:    mat.NewDense(1, 3, []float64{2. / 3, 1. / 3, -2. / 3}),
 			rank: 2, observable: false, detectable: true,
@@ -213,7 +213,7 @@ func TestCheckObservability(t *testing.T) {
 				t.Fatalf("modes %+v, want %d", got.Modes, len(tc.modes))
 			}
 			for _, w := range tc.modes {
-				m := findMode(got.Modes, w.eig)
+				m := modeAt(got.Modes, w.eig)
 				if m == nil {
 					t.Errorf("no mode at %v in %+v", w.eig, got.Modes)
 					continue
@@ -228,7 +228,7 @@ func TestCheckObservability(t *testing.T) {
 				if w.sigma != nil && math.Abs(m.SigmaMin-*w.sigma) > 1e-9**w.sigma {
 					t.Errorf("mode %v: SigmaMin %.17g, want %.17g", w.eig, m.SigmaMin, *w.sigma)
 				}
-				if w.dir != nil && !floatsNear(m.Direction, w.dir, 1e-7) {
+				if w.dir != nil && !directionNear(m.Direction, w.dir, 1e-7) {
 					t.Errorf("mode %v: Direction %v, want %v", w.eig, m.Direction, w.dir)
 				}
 			}
@@ -236,15 +236,15 @@ func TestCheckObservability(t *testing.T) {
 	}
 }
 
-// rotated returns Q·A·Qᵀ.
-func rotated(q, a *mat.Dense) *mat.Dense {
+// rotatedBy returns Q·A·Qᵀ.
+func rotatedBy(q, a *mat.Dense) *mat.Dense {
 	var tmp, out mat.Dense
 	tmp.Mul(q, a)
 	out.Mul(&tmp, q.T())
 	return &out
 }
 
-func findMode(modes []Mode, eig complex128) *Mode {
+func modeAt(modes []Mode, eig complex128) *Mode {
 	for i := range modes {
 		if cmplx.Abs(modes[i].Eigenvalue-eig) < 1e-9 {
 			return &modes[i]
@@ -253,7 +253,7 @@ func findMode(modes []Mode, eig complex128) *Mode {
 	return nil
 }
 
-func floatsNear(got, want []float64, tol float64) bool {
+func directionNear(got, want []float64, tol float64) bool {
 	if len(got) != len(want) {
 		return false
 	}
@@ -286,11 +286,11 @@ func TestCurrentFormSingularA(t *testing.T) {
 	if cur.Observable || cur.Rank != 1 || !cur.Detectable {
 		t.Errorf("(A, CA): Observable %v, Rank %d, Detectable %v; want false, 1, true", cur.Observable, cur.Rank, cur.Detectable)
 	}
-	m := findMode(cur.Modes, 0)
-	if m == nil || m.Observable || !floatsNear(m.Direction, []float64{1, 0}, 1e-12) {
+	m := modeAt(cur.Modes, 0)
+	if m == nil || m.Observable || !directionNear(m.Direction, []float64{1, 0}, 1e-12) {
 		t.Errorf("(A, CA): mode at 0 is %+v, want unobservable along x1", m)
 	}
-	if m := findMode(cur.Modes, 0.5); m == nil || !m.Observable {
+	if m := modeAt(cur.Modes, 0.5); m == nil || !m.Observable {
 		t.Errorf("(A, CA): mode at 0.5 is %+v, want observable", m)
 	}
 }
@@ -300,7 +300,7 @@ func TestCurrentFormSingularA(t *testing.T) {
 // observable exactly when (A, C) is. Half the systems are random (observable
 // with probability one); the other half are built unobservable on purpose —
 // a continuous A_c, C in the block form [[A11, 0], [A21, A22]], [C1, 0],
-// rotated by a random orthogonal matrix — and their unobservable modes must
+// rotatedBy by a random orthogonal matrix — and their unobservable modes must
 // be exactly e^{λ·T} for the eigenvalues λ of A22, in both forms.
 func TestCurrentFormProperty(t *testing.T) {
 	rng := rand.New(rand.NewPCG(20240601, 7))
@@ -340,7 +340,7 @@ func TestCurrentFormProperty(t *testing.T) {
 			}
 		}
 
-		q := randomOrthogonal(rng, n)
+		q := observeRandomOrthogonal(rng, n)
 		var tmp, acq, cq mat.Dense
 		tmp.Mul(q, ac)
 		acq.Mul(&tmp, q.T())
@@ -369,12 +369,12 @@ func TestCurrentFormProperty(t *testing.T) {
 			// Every unobservable mode is an eigenvalue of the unseen block,
 			// and every eigenvalue of the unseen block is unobservable.
 			for _, m := range got.Modes {
-				if !m.Observable && !containsNear(want, m.Eigenvalue, 1e-8) {
+				if !m.Observable && !eigenvalueIn(want, m.Eigenvalue, 1e-8) {
 					t.Errorf("system %d %s: unobservable mode %v not in e^{eig(A22)·T} = %v", it, form.name, m.Eigenvalue, want)
 				}
 			}
 			for _, w := range want {
-				m := nearestMode(got.Modes, w)
+				m := modeNearest(got.Modes, w)
 				if m == nil || m.Observable || cmplx.Abs(m.Eigenvalue-w) > 1e-6 {
 					t.Errorf("system %d %s: e^{λT} = %v should be an unobservable mode; modes %+v", it, form.name, w, got.Modes)
 				}
@@ -383,7 +383,7 @@ func TestCurrentFormProperty(t *testing.T) {
 	}
 }
 
-func randomOrthogonal(rng *rand.Rand, n int) *mat.Dense {
+func observeRandomOrthogonal(rng *rand.Rand, n int) *mat.Dense {
 	g := mat.NewDense(n, n, nil)
 	for i := 0; i < n; i++ {
 		for j := 0; j < n; j++ {
@@ -397,7 +397,7 @@ func randomOrthogonal(rng *rand.Rand, n int) *mat.Dense {
 	return &q
 }
 
-func containsNear(vals []complex128, v complex128, tol float64) bool {
+func eigenvalueIn(vals []complex128, v complex128, tol float64) bool {
 	for _, w := range vals {
 		if cmplx.Abs(w-v) <= tol {
 			return true
@@ -406,7 +406,7 @@ func containsNear(vals []complex128, v complex128, tol float64) bool {
 	return false
 }
 
-func nearestMode(modes []Mode, v complex128) *Mode {
+func modeNearest(modes []Mode, v complex128) *Mode {
 	var best *Mode
 	for i := range modes {
 		if best == nil || cmplx.Abs(modes[i].Eigenvalue-v) < cmplx.Abs(best.Eigenvalue-v) {
