@@ -365,7 +365,7 @@ func (d *decoder) matrix(n *yaml.Node, path string) *matrix {
 			m.ok = false
 		}
 		if good && i > 0 && len(m.rows[0]) > 0 && len(row) != len(m.rows[0]) {
-			d.errorf(it, index(path, i), "row of %d numbers, but row 0 has %d", len(row), len(m.rows[0]))
+			d.errorf(it, index(path, i), "row of %d, but row 0 has %d numbers", len(row), len(m.rows[0]))
 			m.ok = false
 		}
 		m.rows = append(m.rows, row)

@@ -214,14 +214,7 @@ func (w *gainsWalker) set(v *yaml.Node, path string) (*NamedSet, *yaml.Node) {
 		}},
 		{"gains", false, func(v *yaml.Node, p string) {
 			gainsNode = v
-			items, ok := d.sequence(v, p)
-			if !ok {
-				return
-			}
-			if len(items) == 0 {
-				d.errorf(v, p, "empty list: want at least the gain for all outputs")
-			}
-			gainNodes = items
+			gainNodes, _ = d.sequence(v, p)
 		}},
 		{"Q", false, func(v *yaml.Node, p string) { qNode, q = v, d.matrix(v, p) }},
 		{"R", false, func(v *yaml.Node, p string) { rNode, r = v, d.matrix(v, p) }},
@@ -234,6 +227,8 @@ func (w *gainsWalker) set(v *yaml.Node, path string) (*NamedSet, *yaml.Node) {
 	case estimator.Prediction, estimator.Current:
 		if gainsNode == nil {
 			d.errorf(v, join(path, "gains"), "required for the %s form", ns.Set.Form)
+		} else if len(gainNodes) == 0 && gainsNode.Kind == yaml.SequenceNode {
+			d.errorf(gainsNode, join(path, "gains"), "empty list: want at least the gain for all outputs")
 		}
 		for _, nd := range []*yaml.Node{qNode, rNode} {
 			if nd != nil {
