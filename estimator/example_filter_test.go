@@ -30,7 +30,7 @@ func ExampleNewFilter() {
 		return
 	}
 	plant := estimator.NewPlant(md, 1, []float64{1, 0.5}) // no Q, R: no noise
-	f := estimator.NewFilter(pr, nil, nil)                 // starts at 0, 0
+	f := estimator.NewFilter(pr, nil, nil)                // starts at 0, 0
 
 	u, y := []float64{0.2}, make([]float64, 1)
 	x, xhat := make([]float64, 2), make([]float64, 2)
