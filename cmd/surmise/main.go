@@ -31,6 +31,7 @@ type env struct {
 
 func verbs() []verb {
 	return []verb{
+		{"check", "report on a plant's model, its observability and its gain sets", runCheck},
 		{"version", "print the version and build information", runVersion},
 	}
 }
