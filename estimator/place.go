@@ -224,6 +224,15 @@ func Place(a, b mat.Matrix, poles []complex128) (*mat.Dense, error) {
 
 	switch {
 	case rank == 1:
+		// Distinct poles: the eigenvector construction (the closed-loop
+		// eigenvectors are fixed by the poles when there is one input) is
+		// better conditioned than Ackermann's formula; repeated poles need
+		// Ackermann's formula, which is also the fallback.
+		if maxMultiplicity(ps) == 1 {
+			if k := try(knv(ad, br, ps)); k != nil {
+				return k, nil
+			}
+		}
 		if k := try(ackermann(ad, br.ColView(0), ps)); k != nil {
 			return k, nil
 		}
@@ -806,7 +815,11 @@ func knv(a, b *mat.Dense, ps []complex128) (*mat.Dense, error) {
 		return d
 	}
 	prev := detX()
-	const maxSweeps, rtol = 30, 1e-3
+	maxSweeps := 30
+	if m == 1 {
+		maxSweeps = 0 // each Sⱼ is a single direction: nothing to choose
+	}
+	const rtol = 1e-3
 	others := newCmat(n, n-1)
 	for sweep := 0; sweep < maxSweeps; sweep++ {
 		for j := 0; j < n; j++ {
