@@ -12,17 +12,8 @@ import (
 	"gonum.org/v1/gonum/mat"
 )
 
-// Pole-placement tolerances. Every design is checked after the fact: the
-// eigenvalues of the closed loop are computed and matched one to one with the
-// requested poles, and the design is refused when any of them misses.
-//
-// A pole requested once must be met to within poleTolerance·max(1, |p|).
-// A pole requested k > 1 times (deadbeat designs put all poles at 0) is in
-// general a defective eigenvalue whose computed value scatters by about
-// (u·‖M‖)^(1/k) for machine precision u and closed-loop matrix M; each member
-// of such a cluster must lie within max(poleTolerance, 10·(u·max(1, ‖M‖_F))^(1/k))·max(1, |p|)
-// of p, and the mean of the cluster, which is well conditioned, within
-// poleTolerance·max(1, |p|)·max(1, ‖M‖_F)^(1/2).
+// poleTolerance is the relative accuracy a placed pole must reach; the rule
+// for repeated poles is documented at Place.
 const poleTolerance = 1e-6
 
 // Eigenvalues returns the eigenvalues of the square matrix a, sorted by
@@ -141,9 +132,12 @@ func patternIndices(s Pattern, p int) []int {
 // in complex-conjugate pairs; (A, B) must be controllable, which is decided by
 // CheckObservability on the dual pair (Aᵀ, Bᵀ).
 //
-// With one effective input (B of rank one) the gain is unique and is computed
-// by Ackermann's formula, which also handles repeated poles such as a deadbeat
-// design. With more inputs the gain is not unique; Place uses the robust method
+// With one effective input (B of rank one) the gain is unique. For distinct
+// poles it is computed from the closed-loop eigenvectors, which one input
+// fixes (x_j spans null(U₁ᵀ(A − λ_jI)), see below), as that is better
+// conditioned than Ackermann's formula; repeated poles, such as a deadbeat
+// design, and any failure of that construction go to Ackermann's formula.
+// With more inputs the gain is not unique; Place uses the robust method
 // 0 of Kautsky, Nichols and Van Dooren (1985), carried out in complex
 // arithmetic so that complex pairs are handled too, which chooses the
 // closed-loop eigenvectors to be as well conditioned as it can. When a pole is
@@ -152,9 +146,15 @@ func patternIndices(s Pattern, p int) []int {
 // input direction with which the pair is controllable) and solved by
 // Ackermann's formula.
 //
-// Every design is checked: the eigenvalues of A − B·K are computed and an error
-// is returned when they miss the requested poles by more than the tolerances
-// described at Place.
+// Every design is checked: the eigenvalues of M = A − B·K are computed,
+// matched one to one with the requested poles, and an error is returned when
+// any misses. A pole p requested once must be met to within
+// 1e-6·max(1, |p|). A pole requested k > 1 times is in general a defective
+// eigenvalue whose computed members scatter by about (u·‖M‖_F)^(1/k), u the
+// machine precision; each member must then lie within
+// max(1e-6, 10·(u·max(1, ‖M‖_F))^(1/k))·max(1, |p|) of p, and the mean of
+// the cluster, which rounding leaves accurate, within
+// 1e-6·max(1, |p|)·max(1, ‖M‖_F)^(1/2).
 func Place(a, b mat.Matrix, poles []complex128) (*mat.Dense, error) {
 	n, nc := a.Dims()
 	bn, m := b.Dims()
@@ -368,7 +368,7 @@ func formatPoles(ps []complex128) string {
 }
 
 // checkPoles computes the eigenvalues of m and matches them with the wanted
-// poles under the tolerances documented at poleTolerance. It returns the
+// poles under the tolerances documented at Place. It returns the
 // eigenvalues in Eigenvalues order.
 func checkPoles(m *mat.Dense, want []complex128) ([]complex128, error) {
 	got := Eigenvalues(m)
@@ -741,7 +741,7 @@ func csolve(a, b *cmat) (*cmat, bool) {
 }
 
 // knv is method 0 of Kautsky, Nichols and Van Dooren for B (n×m) of full
-// column rank 1 < m < n. The closed-loop eigenvector of pole λⱼ is chosen in
+// column rank m < n (for m = 1 each Sⱼ is one direction and no sweep is run). The closed-loop eigenvector of pole λⱼ is chosen in
 // Sⱼ = null(U₁ᵀ(A − λⱼI)), where B = [U₀ U₁]·[Z; 0]; each sweep replaces one
 // vector at a time by the projection onto Sⱼ of the direction orthogonal to
 // all the others, which increases |det X| for unit columns. Complex poles are
