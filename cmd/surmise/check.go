@@ -856,26 +856,7 @@ func writeCheckText(out io.Writer, r *checkReport) {
 			if sr.Form == "kalman" && len(sr.Patterns) > 0 {
 				pf("    time-varying gain for whichever outputs are present; its steady state:\n")
 			}
-			tw = tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
-			if len(sr.Patterns) > 0 {
-				fmt.Fprintln(tw, "    outputs\tspectral radius\tconvergence\tNIS\terror-dynamics eigenvalues")
-			}
-			for _, pt := range sr.Patterns {
-				conv := "not stable"
-				if pt.ConvergenceSeconds != nil {
-					conv = fsec(*pt.ConvergenceSeconds)
-				}
-				nis := "no (no S)"
-				if pt.NIS {
-					nis = "yes"
-				}
-				poles := make([]complex128, len(pt.Poles))
-				for i, pl := range pt.Poles {
-					poles[i] = complex(pl.Re, pl.Im)
-				}
-				fmt.Fprintf(tw, "    %s\t%s\t%s\t%s\t%s\n", strings.Join(pt.Outputs, "+"), fnum(pt.SpectralRadius), conv, nis, fpoles(poles))
-			}
-			tw.Flush()
+			writePatternTable(w, "    ", sr.Patterns)
 			if len(sr.Uncovered) > 0 {
 				var list []string
 				for _, u := range sr.Uncovered {
@@ -907,6 +888,32 @@ func writeCheckText(out io.Writer, r *checkReport) {
 	for _, pb := range r.Problems {
 		pf("  - %s\n", pb)
 	}
+}
+
+// writePatternTable prints the error dynamics of a gain set's gains, one
+// line per output pattern.
+func writePatternTable(w io.Writer, indent string, pts []patternReport) {
+	if len(pts) == 0 {
+		return
+	}
+	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
+	fmt.Fprintln(tw, indent+"outputs\tspectral radius\tconvergence\tNIS\terror-dynamics eigenvalues")
+	for _, pt := range pts {
+		conv := "not stable"
+		if pt.ConvergenceSeconds != nil {
+			conv = fsec(*pt.ConvergenceSeconds)
+		}
+		nis := "no (no S)"
+		if pt.NIS {
+			nis = "yes"
+		}
+		poles := make([]complex128, len(pt.Poles))
+		for i, pl := range pt.Poles {
+			poles[i] = complex(pl.Re, pl.Im)
+		}
+		fmt.Fprintf(tw, "%s%s\t%s\t%s\t%s\t%s\n", indent, strings.Join(pt.Outputs, "+"), fnum(pt.SpectralRadius), conv, nis, fpoles(poles))
+	}
+	tw.Flush()
 }
 
 // trimLines removes the trailing blanks tabwriter leaves on the lines of a

@@ -32,6 +32,7 @@ type env struct {
 func verbs() []verb {
 	return []verb{
 		{"check", "report on a plant's model, its observability and its gain sets", runCheck},
+		{"design", "design observer or Kalman gains and write the gains file", runDesign},
 		{"version", "print the version and build information", runVersion},
 	}
 }
