@@ -91,6 +91,7 @@ func TestOutputRowsAndCov(t *testing.T) {
 	c := mat.NewDense(3, 2, []float64{1, 2, 3, 4, 5, 6})
 	r := mat.NewSymDense(3, []float64{1, 0.1, 0.2, 0.1, 2, 0.3, 0.2, 0.3, 3})
 	s := Pattern(0b101)
+	// Expected: rows (and the R block) of outputs 0 and 2, by definition.
 	if got, want := OutputRows(c, s), mat.NewDense(2, 2, []float64{1, 2, 5, 6}); !mat.Equal(got, want) {
 		t.Errorf("OutputRows = %v, want %v", mat.Formatted(got), mat.Formatted(want))
 	}
