@@ -439,6 +439,14 @@ func (w *gainsWalker) stable(form estimator.Form, pg *estimator.PatternGain, nod
 		what = "A − L·C·A"
 	}
 	e.Sub(md.A, &lc)
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			if v := e.At(i, j); math.IsNaN(v) || math.IsInf(v, 0) {
+				w.d.errorf(node, path, "the error dynamics %s overflow", what)
+				return
+			}
+		}
+	}
 	var eig mat.Eigen
 	if !eig.Factorize(&e, mat.EigenNone) {
 		w.d.errorf(node, path, "the eigenvalues of the error dynamics %s could not be computed", what)

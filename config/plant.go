@@ -2,6 +2,7 @@ package config
 
 import (
 	"fmt"
+	"math"
 	"os"
 	"path/filepath"
 	"time"
@@ -503,6 +504,9 @@ func (r *rawPlant) check(d *decoder) {
 		if haveP && haveM {
 			d.shape(md.D, "model.D", p, "outputs", m, "inputs")
 		}
+		if md.time == "continuous" && md.sample > 0 {
+			r.checkExponent(d)
+		}
 		if md.time == "discrete" && r.process != nil && r.process.time == "continuous" {
 			d.errorf(r.process.timeNode, "noise.process.time", "a discrete model takes its process noise as a covariance per sample: want discrete")
 		}
@@ -645,4 +649,55 @@ func (r *rawPlant) build(filename string) (*Plant, error) {
 		plant.Window = r.window
 	}
 	return plant, nil
+}
+
+// MaxContinuousNorm bounds ‖A‖₁·Ts of a continuous model: beyond it the
+// fastest modes decay (or grow) by more than e^1000000 in one sample, which
+// double precision cannot represent, and the matrix exponential would need
+// ever more squarings (an infinite norm would never finish).
+const MaxContinuousNorm = 1e6
+
+// checkExponent refuses continuous models that cannot be discretised in
+// double precision: ‖A‖₁·Ts above MaxContinuousNorm, or ‖B‖₁·Ts or the
+// process intensity times Ts overflowing.
+func (r *rawPlant) checkExponent(d *decoder) {
+	md := r.model
+	ts := md.sample.Seconds()
+	if md.A != nil && md.A.ok {
+		if v := norm1(md.A.rows) * ts; !(v <= MaxContinuousNorm) {
+			d.errorf(md.A.node, "model.A", "‖A‖₁·sample is %.3g, more than %g: modes this fast cannot be discretised at this sample time", v, MaxContinuousNorm)
+		}
+	}
+	if md.B != nil && md.B.ok {
+		if v := norm1(md.B.rows) * ts; math.IsInf(v, 0) {
+			d.errorf(md.B.node, "model.B", "‖B‖₁·sample overflows")
+		}
+	}
+	if nz := r.process; nz != nil && nz.time != "discrete" {
+		v := 0.0
+		switch {
+		case nz.cov != nil && nz.cov.ok:
+			v = norm1(nz.cov.rows) * ts
+		case nz.stdOK:
+			for _, s := range nz.std {
+				v = math.Max(v, s*s*ts)
+			}
+		}
+		if math.IsInf(v, 0) {
+			d.errorf(nz.node, "noise.process", "the intensity times the sample time overflows")
+		}
+	}
+}
+
+// norm1 is the largest column sum of absolute values.
+func norm1(rows [][]float64) float64 {
+	best := 0.0
+	for j := range rows[0] {
+		s := 0.0
+		for i := range rows {
+			s += math.Abs(rows[i][j])
+		}
+		best = math.Max(best, s)
+	}
+	return best
 }
