@@ -131,11 +131,13 @@
 //	    provenance: {method: kalman}
 //
 // A gains file is refused when its fingerprint is not the plant model's
-// ("designed for a different model"), and when the error dynamics of any
-// fixed gain (A − L·C for the prediction form, A − L·C·A for the current
-// form, C restricted to the pattern's outputs) have an eigenvalue on or
-// outside the unit circle. The stated poles are informative and not compared
-// with the computed ones.
+// ("designed for a different model"), and when estimator.Prepare refuses a
+// set — among its rules, that the error dynamics of every fixed gain
+// (A − L·C for the prediction form, A − L·C·A for the current form, C
+// restricted to the pattern's outputs) have all eigenvalues inside the unit
+// circle. Prepare runs on a set once the file's own checks of that set have
+// passed, so the file is judged by the code that will run it. The stated
+// poles are informative and not compared with the computed ones.
 //
 // # Fingerprint
 //

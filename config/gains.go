@@ -104,8 +104,9 @@ func LoadGains(path string, plant *Plant) (*GainsFile, error) {
 // different model (its fingerprint is not Fingerprint(plant.Model)), wrong
 // dimensions, non-finite numbers, unknown output names, repeated set names, an
 // active or candidate set that is not in the file, covariances that are not
-// symmetric positive (semi)definite, and gains whose error dynamics are not
-// inside the unit circle. On failure the error is an *ErrorList holding every
+// symmetric positive (semi)definite, and sets that estimator.Prepare refuses
+// with the plant's gate (among them, fixed gains whose error dynamics are not
+// inside the unit circle). On failure the error is an *ErrorList holding every
 // problem found. plant must not be nil.
 func ParseGains(filename string, data []byte, plant *Plant) (*GainsFile, error) {
 	d := &decoder{file: filename}
@@ -114,7 +115,7 @@ func ParseGains(filename string, data []byte, plant *Plant) (*GainsFile, error) 
 		return nil, d.err()
 	}
 	g := NewGainsFile(plant)
-	gw := gainsWalker{d: d, model: plant.Model, file: g}
+	gw := gainsWalker{d: d, model: plant.Model, gate: plant.Gate, file: g}
 	gw.walk(root)
 	if err := d.err(); err != nil {
 		return nil, err
@@ -125,6 +126,7 @@ func ParseGains(filename string, data []byte, plant *Plant) (*GainsFile, error) 
 type gainsWalker struct {
 	d     *decoder
 	model *estimator.Model
+	gate  float64
 	file  *GainsFile
 }
 
@@ -191,6 +193,7 @@ func (w *gainsWalker) set(v *yaml.Node, path string) (*NamedSet, *yaml.Node) {
 	d, md := w.d, w.model
 	n, _, p := md.Dims()
 	ns := &NamedSet{Set: &estimator.GainSet{}}
+	before := len(d.errs)
 	var nameNode, gainsNode, qNode, rNode *yaml.Node
 	var gainNodes []*yaml.Node
 	var q, r *matrix
@@ -248,6 +251,14 @@ func (w *gainsWalker) set(v *yaml.Node, path string) (*NamedSet, *yaml.Node) {
 		}
 		ns.Set.Q = w.cov(q, join(path, "Q"), n, "states", false)
 		ns.Set.R = w.cov(r, join(path, "R"), p, "outputs", true)
+	}
+	if len(d.errs) == before && ns.Set.Form != 0 {
+		// The rules the engine applies (among them: the error dynamics of
+		// every fixed gain inside the unit circle) are estimator.Prepare's;
+		// the file is checked by the same code that will run it.
+		if _, err := estimator.Prepare(md, ns.Set, w.gate); err != nil {
+			d.errorf(v, path, "refused by the estimator (gains counted from 0, the gain for all outputs first): %v", err)
+		}
 	}
 	return ns, nameNode
 }
@@ -309,7 +320,6 @@ func (w *gainsWalker) gains(set *estimator.GainSet, items []*yaml.Node, path str
 		k := pg.Outputs.Len()
 		if d.shape(l, join(gp, "L"), n, "states", k, "outputs of the pattern") {
 			pg.L = dense(l.rows)
-			w.stable(set.Form, &pg, l.node, join(gp, "L"))
 		}
 		if s != nil {
 			pg.S = w.cov(s, join(gp, "S"), k, "outputs of the pattern", true)
@@ -413,54 +423,6 @@ func (w *gainsWalker) poles(v *yaml.Node, path string) []complex128 {
 		return nil
 	}
 	return out
-}
-
-// stable checks that the error dynamics of a fixed gain are inside the unit
-// circle: A − L·Cs for the prediction form and A − L·Cs·A for the current
-// form, Cs the rows of C in the pattern.
-//
-// TODO(config): replace by estimator.Prepare once it exists, so that the
-// file and the engine apply one rule.
-func (w *gainsWalker) stable(form estimator.Form, pg *estimator.PatternGain, node *yaml.Node, path string) {
-	md := w.model
-	n, _, _ := md.Dims()
-	idx := pg.Outputs.Indices(nil)
-	cs := mat.NewDense(len(idx), n, nil)
-	for r, i := range idx {
-		cs.SetRow(r, mat.Row(nil, i, md.C))
-	}
-	var lc, e mat.Dense
-	lc.Mul(pg.L, cs)
-	what := "A − L·C"
-	if form == estimator.Current {
-		var lca mat.Dense
-		lca.Mul(&lc, md.A)
-		lc = lca
-		what = "A − L·C·A"
-	}
-	e.Sub(md.A, &lc)
-	for i := 0; i < n; i++ {
-		for j := 0; j < n; j++ {
-			if v := e.At(i, j); math.IsNaN(v) || math.IsInf(v, 0) {
-				w.d.errorf(node, path, "the error dynamics %s overflow", what)
-				return
-			}
-		}
-	}
-	var eig mat.Eigen
-	if !eig.Factorize(&e, mat.EigenNone) {
-		w.d.errorf(node, path, "the eigenvalues of the error dynamics %s could not be computed", what)
-		return
-	}
-	worst := complex(0, 0)
-	for _, l := range eig.Values(nil) {
-		if cmplx.Abs(l) > cmplx.Abs(worst) || cmplx.IsNaN(l) {
-			worst = l
-		}
-	}
-	if a := cmplx.Abs(worst); !(a < 1) {
-		w.d.errorf(node, path, "the error dynamics %s are not stable: eigenvalue %s has magnitude %.6g, want < 1", what, formatPole(worst), a)
-	}
 }
 
 // provenance walks the provenance of a set.
