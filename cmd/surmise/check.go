@@ -691,15 +691,15 @@ func writeCheckText(out io.Writer, r *checkReport) {
 	w := &buf
 	pf := func(format string, args ...any) { fmt.Fprintf(w, format, args...) }
 	m := &r.Model
-	pf("plant        %s (%s)\n", r.Plant, r.File)
-	pf("model        %s, %s, %s; %s\n", plural(len(m.States), "state"), plural(len(m.Inputs), "input"), plural(len(m.Outputs), "output"), m.Discretisation)
+	pf("%-14s %s (%s)\n", "plant", r.Plant, r.File)
+	pf("%-14s %s, %s, %s; %s\n", "model", plural(len(m.States), "state"), plural(len(m.Inputs), "input"), plural(len(m.Outputs), "output"), m.Discretisation)
 	switch {
 	case m.Time == "continuous" && m.ProcessNoise == "continuous":
-		pf("process noise  spectral density discretised by Van Loan's method\n")
+		pf("%-14s spectral density discretised by Van Loan's method\n", "process noise")
 	default:
-		pf("process noise  given as a covariance per sample\n")
+		pf("%-14s given as a covariance per sample\n", "process noise")
 	}
-	pf("fingerprint  %s\n", r.Fingerprint)
+	pf("%-14s %s\n", "fingerprint", r.Fingerprint)
 
 	stateN, inN, outN := sigNames(m.States), sigNames(m.Inputs), sigNames(m.Outputs)
 	pf("\nDiscrete model  x(k+1) = A·x(k) + B·u(k),  y(k) = C·x(k) + D·u(k)  (deviations from nominal)\n")
@@ -819,7 +819,7 @@ func writeCheckText(out io.Writer, r *checkReport) {
 	pf("  measurement, per sample%s:  %s\n", corr, perSignal(n.MeasurementStd, m.Outputs, ""))
 
 	s := &r.Settings
-	pf("\nSettings     gains file %s; outlier gate %s; NIS window %d ticks; estimates on %s.estimate\n",
+	pf("\nSettings\n  gains file %s; outlier gate %s; NIS window %d ticks; estimates on %s.estimate\n",
 		s.GainsFile, gateText(s.Gate), s.Window, s.Publish)
 
 	if g := r.Gains; g != nil {
