@@ -65,7 +65,7 @@ func TestDesignDoubleIntegratorGolden(t *testing.T) {
 		form string
 		want [2]float64
 	}{
-		{"prediction", [2]float64{1, 2.5}},  // [2 − p₁ − p₂, (1 − p₁)(1 − p₂)/T]
+		{"prediction", [2]float64{1, 2.5}}, // [2 − p₁ − p₂, (1 − p₁)(1 − p₂)/T]
 		{"current", [2]float64{0.75, 2.5}}, // [1 − p₁p₂, (1 − p₁)(1 − p₂)/T]
 	} {
 		t.Run(tc.form, func(t *testing.T) {
