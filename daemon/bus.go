@@ -1,0 +1,322 @@
+package daemon
+
+import (
+	"crypto/tls"
+	"crypto/x509"
+	"errors"
+	"fmt"
+	"io"
+	"log/slog"
+	"net"
+	"os"
+	"strconv"
+	"sync/atomic"
+	"time"
+
+	"github.com/nats-io/nats-server/v2/server"
+	"github.com/nats-io/nats.go"
+)
+
+// DefaultEmbeddedPort is the loopback port the embedded NATS server listens
+// on when it is free: the standard NATS client port, so that other tools on
+// the machine connect to it without options.
+const DefaultEmbeddedPort = 4222
+
+// EmbeddedOptions configures the in-process NATS server. The zero value,
+// apart from StoreDir, means defaults.
+type EmbeddedOptions struct {
+	// Port on 127.0.0.1 (the server never listens on other addresses).
+	// Zero means DefaultEmbeddedPort if it is free, otherwise a random free
+	// port; -1 means a random free port; any other value that port or an
+	// error.
+	Port int
+
+	// StoreDir is the JetStream storage directory; it is required, so that
+	// the server never writes to a directory the caller did not choose.
+	StoreDir string
+
+	// JetStreamMaxMemory and JetStreamMaxStore limit JetStream's memory and
+	// file storage, in bytes. Zero means 64 MiB and 1 GiB. (The server's
+	// own defaults are 75 % of the machine's memory and of the free disk.)
+	JetStreamMaxMemory, JetStreamMaxStore int64
+
+	// ServerName names the server in monitoring output; zero means
+	// "surmise".
+	ServerName string
+
+	// ReadyTimeout bounds the wait until the server accepts connections;
+	// zero means 5 s.
+	ReadyTimeout time.Duration
+
+	// Log receives one line with the server's URL; nil means no logging.
+	Log *slog.Logger
+}
+
+// StartEmbedded starts an in-process NATS server with JetStream on a
+// loopback port and returns once it accepts connections. The server does not
+// install signal handlers (NoSigs: SIGHUP stays ours) and does not log. The
+// caller stops it with Shutdown and WaitForShutdown; clients in the same
+// process connect with [BusOptions].Embedded, others at its ClientURL.
+func StartEmbedded(opts EmbeddedOptions) (*server.Server, error) {
+	if opts.StoreDir == "" {
+		return nil, errors.New("embedded NATS server: no JetStream store directory given")
+	}
+	if opts.Port < -1 || opts.Port > 65535 {
+		return nil, fmt.Errorf("embedded NATS server: port %d out of range", opts.Port)
+	}
+	port := opts.Port
+	if port == 0 {
+		port = DefaultEmbeddedPort
+		if ln, err := net.Listen("tcp", net.JoinHostPort("127.0.0.1", strconv.Itoa(port))); err != nil {
+			port = -1 // taken: let the server pick one
+		} else {
+			ln.Close()
+		}
+	}
+	name := opts.ServerName
+	if name == "" {
+		name = "surmise"
+	}
+	maxMem, maxStore := opts.JetStreamMaxMemory, opts.JetStreamMaxStore
+	if maxMem == 0 {
+		maxMem = 64 << 20
+	}
+	if maxStore == 0 {
+		maxStore = 1 << 30
+	}
+	timeout := opts.ReadyTimeout
+	if timeout == 0 {
+		timeout = 5 * time.Second
+	}
+	ns, err := server.NewServer(&server.Options{
+		ServerName:         name,
+		Host:               "127.0.0.1",
+		Port:               port,
+		NoSigs:             true,
+		NoLog:              true,
+		JetStream:          true,
+		StoreDir:           opts.StoreDir,
+		JetStreamMaxMemory: maxMem,
+		JetStreamMaxStore:  maxStore,
+	})
+	if err != nil {
+		return nil, fmt.Errorf("embedded NATS server: %w", err)
+	}
+	ns.Start()
+	if !ns.ReadyForConnections(timeout) {
+		ns.Shutdown()
+		ns.WaitForShutdown()
+		return nil, fmt.Errorf("embedded NATS server on 127.0.0.1 port %d: not ready after %v", port, timeout)
+	}
+	if opts.Log != nil {
+		opts.Log.Info("embedded NATS server started", "url", ns.ClientURL(), "store", opts.StoreDir)
+	}
+	return ns, nil
+}
+
+// BusOptions says how to reach the NATS server. Either URL or Embedded is
+// required; the other fields are optional.
+type BusOptions struct {
+	// URL is a server URL, or several separated by commas
+	// ("nats://a:4222,nats://b:4222"). Ignored when Embedded is set.
+	URL string
+
+	// Embedded connects in-process to this server, without a socket.
+	Embedded *server.Server
+
+	// CredsFile is a user credentials file (a JWT and its NKey seed).
+	CredsFile string
+	// NKeyFile is a file holding a user NKey seed.
+	NKeyFile string
+
+	// TLSCA is a PEM file of the certificate authorities that sign the
+	// server's certificate; TLSCert and TLSKey are the client certificate
+	// and key, for servers that verify clients. Setting any enables TLS.
+	TLSCA, TLSCert, TLSKey string
+
+	// Name is the connection's name in the server's monitoring; zero means
+	// "surmise".
+	Name string
+
+	// ReconnectWait is the pause between reconnection attempts to the same
+	// server; zero means 2 s. ReconnectJitter is the upper bound of a random
+	// delay added to it, so that a fleet does not reconnect in step; zero
+	// means 500 ms.
+	ReconnectWait, ReconnectJitter time.Duration
+}
+
+// Bus is a NATS connection with handlers that log and update the bus
+// metrics. Publish and subscribe through [Bus.Conn]; close with
+// [Bus.Close], which drains.
+type Bus struct {
+	nc      *nats.Conn
+	closed  chan struct{} // closed by the closed handler
+	closing atomic.Bool   // set by Close: the disconnect that follows is ours
+	log     *slog.Logger
+}
+
+// Connect connects to the server of opts. It returns at once even when the
+// server cannot be reached yet: the connection keeps retrying, forever, with
+// back-off (ReconnectWait plus jitter), and surmise_bus_connected says when
+// it is up. Files named in opts are read now, and an unreadable one is an
+// error. m and log may be nil.
+//
+// The reconnect buffer is disabled (nats.ReconnectBufSize(-1)): while
+// disconnected, Publish fails at once instead of queueing. An estimate is
+// only meaningful at its time; one buffered during an outage and delivered
+// after the reconnect would reach subscribers late and out of step with the
+// live stream, looking current when it is not. Dropped estimates are the
+// honest record of an outage (the estimator's sequence numbers show the
+// gap).
+func Connect(opts BusOptions, m *Metrics, log *slog.Logger) (*Bus, error) {
+	if log == nil {
+		log = slog.New(slog.NewTextHandler(io.Discard, nil))
+	}
+	if opts.URL == "" && opts.Embedded == nil {
+		return nil, errors.New("bus: no server URL and no embedded server")
+	}
+	name := opts.Name
+	if name == "" {
+		name = "surmise"
+	}
+	wait, jitter := opts.ReconnectWait, opts.ReconnectJitter
+	if wait == 0 {
+		wait = 2 * time.Second
+	}
+	if jitter == 0 {
+		jitter = 500 * time.Millisecond
+	}
+	b := &Bus{closed: make(chan struct{}), log: log}
+	setConnected := func(up bool) {
+		if m != nil {
+			m.SetBusConnected(up)
+		}
+	}
+	nopts := []nats.Option{
+		nats.Name(name),
+		nats.MaxReconnects(-1),
+		nats.ReconnectWait(wait),
+		nats.ReconnectJitter(jitter, jitter),
+		nats.RetryOnFailedConnect(true),
+		nats.ReconnectBufSize(-1), // see the doc comment: no stale estimates after a reconnect
+		nats.ConnectHandler(func(nc *nats.Conn) {
+			setConnected(true)
+			log.Info("bus connected", "url", nc.ConnectedUrlRedacted())
+		}),
+		nats.ReconnectHandler(func(nc *nats.Conn) {
+			setConnected(true)
+			log.Info("bus reconnected", "url", nc.ConnectedUrlRedacted())
+		}),
+		nats.DisconnectErrHandler(func(nc *nats.Conn, err error) {
+			setConnected(false)
+			if b.closing.Load() {
+				return // the disconnect of our own Close
+			}
+			if m != nil {
+				m.BusDisconnected()
+			}
+			log.Warn("bus disconnected", "error", err)
+		}),
+		nats.ClosedHandler(func(nc *nats.Conn) {
+			setConnected(false)
+			log.Info("bus connection closed")
+			close(b.closed)
+		}),
+		nats.ErrorHandler(func(nc *nats.Conn, sub *nats.Subscription, err error) {
+			subject := ""
+			if sub != nil {
+				subject = sub.Subject
+			}
+			log.Warn("bus error", "subject", subject, "error", err)
+		}),
+	}
+	auth, err := authOptions(opts)
+	if err != nil {
+		return nil, err
+	}
+	nopts = append(nopts, auth...)
+
+	url := opts.URL
+	if opts.Embedded != nil {
+		url = opts.Embedded.ClientURL()
+		nopts = append(nopts, nats.InProcessServer(opts.Embedded))
+	}
+	nc, err := nats.Connect(url, nopts...)
+	if err != nil {
+		return nil, fmt.Errorf("bus: connecting to %s: %w", url, err)
+	}
+	b.nc = nc
+	if nc.IsConnected() {
+		setConnected(true)
+	} else {
+		log.Warn("bus not reachable yet, retrying in the background", "url", url)
+	}
+	return b, nil
+}
+
+// authOptions checks the credential and TLS files of opts and returns the
+// matching client options.
+func authOptions(opts BusOptions) ([]nats.Option, error) {
+	var out []nats.Option
+	if opts.CredsFile != "" && opts.NKeyFile != "" {
+		return nil, errors.New("bus: both a credentials file and an NKey seed file given; use one")
+	}
+	if opts.CredsFile != "" {
+		if _, err := os.ReadFile(opts.CredsFile); err != nil {
+			return nil, fmt.Errorf("bus: credentials file: %w", err)
+		}
+		out = append(out, nats.UserCredentials(opts.CredsFile))
+	}
+	if opts.NKeyFile != "" {
+		o, err := nats.NkeyOptionFromSeed(opts.NKeyFile)
+		if err != nil {
+			return nil, fmt.Errorf("bus: NKey seed file %s: %w", opts.NKeyFile, err)
+		}
+		out = append(out, o)
+	}
+	if (opts.TLSCert == "") != (opts.TLSKey == "") {
+		return nil, errors.New("bus: a TLS client certificate needs both the certificate and the key file")
+	}
+	if opts.TLSCA != "" {
+		pem, err := os.ReadFile(opts.TLSCA)
+		if err != nil {
+			return nil, fmt.Errorf("bus: TLS CA file: %w", err)
+		}
+		if !x509.NewCertPool().AppendCertsFromPEM(pem) {
+			return nil, fmt.Errorf("bus: TLS CA file %s: no PEM certificate in it", opts.TLSCA)
+		}
+		out = append(out, nats.RootCAs(opts.TLSCA))
+	}
+	if opts.TLSCert != "" {
+		if _, err := tls.LoadX509KeyPair(opts.TLSCert, opts.TLSKey); err != nil {
+			return nil, fmt.Errorf("bus: TLS client certificate: %w", err)
+		}
+		out = append(out, nats.ClientCert(opts.TLSCert, opts.TLSKey))
+	}
+	return out, nil
+}
+
+// Conn returns the NATS connection.
+func (b *Bus) Conn() *nats.Conn { return b.nc }
+
+// Close drains the connection — subscriptions stop taking messages, those
+// already received are handled, pending publishes are flushed — and waits
+// for the closed handler, at most timeout. A connection that cannot drain
+// (it is reconnecting, say) is closed at once. Close may be called more than
+// once; later calls wait for the same closure.
+func (b *Bus) Close(timeout time.Duration) error {
+	b.closing.Store(true)
+	if err := b.nc.Drain(); err != nil && !errors.Is(err, nats.ErrConnectionClosed) {
+		b.log.Info("bus cannot drain, closing", "error", err)
+		b.nc.Close()
+	}
+	t := time.NewTimer(timeout)
+	defer t.Stop()
+	select {
+	case <-b.closed:
+		return nil
+	case <-t.C:
+		b.nc.Close()
+		return fmt.Errorf("bus: not closed %v after draining began", timeout)
+	}
+}
