@@ -1,0 +1,206 @@
+package daemon
+
+import (
+	"math"
+	"strconv"
+	"time"
+	"unicode/utf8"
+
+	"surmise/estimator"
+)
+
+// Estimate is what one tick publishes: the state in absolute units with its
+// standard deviation, the outputs as predicted and measured, and the
+// consistency figures. It is owned by the caller and reused from tick to
+// tick (Engine.NewEstimate makes one that fits). Unknown numbers are NaN.
+type Estimate struct {
+	Time        time.Time // the tick's due time
+	Seq         uint64    // tick sequence number, from 1
+	Status      Status
+	Gains       string // name of the gain set that produced it
+	Fingerprint string // fingerprint of the model the gains were designed for
+	Form        string // prediction, current or kalman
+
+	States  []StateEstimate
+	Inputs  []InputValue
+	Outputs []OutputEstimate
+
+	NIS     float64    // this tick's NIS; NaN when none was computed
+	Dof     int        // number of outputs the NIS was computed with
+	NISMean float64    // mean NIS over the window; NaN when empty
+	NISBand [2]float64 // 95 % band on NISMean for the window's contents
+
+	Used     estimator.Pattern // outputs the state was corrected with
+	Outliers estimator.Pattern // outputs the gate rejected
+	NoGain   bool              // fixed gains have no gain for the outputs present: predicted only
+}
+
+// StateEstimate is one state of an Estimate.
+type StateEstimate struct {
+	Name, Unit string
+	Value      float64 // x₀ + x̂
+	Std        float64 // standard deviation, NaN when the gains give no covariance
+}
+
+// InputValue is the value an input was held at for this tick.
+type InputValue struct {
+	Name, Unit string
+	Value      float64 // held sample, or the operating point if never received
+	Age        float64 // seconds since the held sample's time; NaN if never received
+	Stale      bool    // never received, or older than max_age
+}
+
+// OutputEstimate is one output of an Estimate.
+type OutputEstimate struct {
+	Name, Unit    string
+	Measured      float64 // the sample used this tick; NaN when none
+	Predicted     float64 // C·x̂(k|k−1) + D·u in absolute units
+	Innovation    float64 // measured − predicted; NaN when not measured
+	InnovationStd float64 // √S for this output; NaN when unknown
+	Age           float64 // seconds since the newest sample's time; NaN if never received
+	Used          bool    // corrected with
+	Outlier       bool    // rejected by the gate
+	Stale         bool    // a sample arrived for this tick but older than max_age
+	Received      time.Time
+}
+
+// AppendJSON appends the estimate as one JSON object to dst and returns the
+// extended slice. It allocates nothing when dst has room. NaN and infinite
+// numbers are written as null. The object is
+//
+//	{"time": RFC 3339 with fraction, UTC, "seq", "status", "gains",
+//	 "fingerprint", "form",
+//	 "states": {name: {"value", "std", "unit"}},
+//	 "inputs": {name: {"value", "age", "stale", "unit"}},
+//	 "outputs": {name: {"measured", "predicted", "innovation",
+//	             "innovation_std", "age", "used", "outlier", "unit"}},
+//	 "nis", "dof", "nis_mean", "nis_band": [lo, hi]}
+func (est *Estimate) AppendJSON(dst []byte) []byte {
+	dst = append(dst, `{"time":"`...)
+	dst = est.Time.UTC().AppendFormat(dst, time.RFC3339Nano)
+	dst = append(dst, `","seq":`...)
+	dst = strconv.AppendUint(dst, est.Seq, 10)
+	dst = append(dst, `,"status":`...)
+	dst = appendString(dst, est.Status.String())
+	dst = append(dst, `,"gains":`...)
+	dst = appendString(dst, est.Gains)
+	dst = append(dst, `,"fingerprint":`...)
+	dst = appendString(dst, est.Fingerprint)
+	dst = append(dst, `,"form":`...)
+	dst = appendString(dst, est.Form)
+
+	dst = append(dst, `,"states":{`...)
+	for i := range est.States {
+		s := &est.States[i]
+		if i > 0 {
+			dst = append(dst, ',')
+		}
+		dst = appendString(dst, s.Name)
+		dst = append(dst, `:{"value":`...)
+		dst = appendFloat(dst, s.Value)
+		dst = append(dst, `,"std":`...)
+		dst = appendFloat(dst, s.Std)
+		dst = append(dst, `,"unit":`...)
+		dst = appendString(dst, s.Unit)
+		dst = append(dst, '}')
+	}
+	dst = append(dst, `},"inputs":{`...)
+	for i := range est.Inputs {
+		in := &est.Inputs[i]
+		if i > 0 {
+			dst = append(dst, ',')
+		}
+		dst = appendString(dst, in.Name)
+		dst = append(dst, `:{"value":`...)
+		dst = appendFloat(dst, in.Value)
+		dst = append(dst, `,"age":`...)
+		dst = appendFloat(dst, in.Age)
+		dst = append(dst, `,"stale":`...)
+		dst = strconv.AppendBool(dst, in.Stale)
+		dst = append(dst, `,"unit":`...)
+		dst = appendString(dst, in.Unit)
+		dst = append(dst, '}')
+	}
+	dst = append(dst, `},"outputs":{`...)
+	for i := range est.Outputs {
+		o := &est.Outputs[i]
+		if i > 0 {
+			dst = append(dst, ',')
+		}
+		dst = appendString(dst, o.Name)
+		dst = append(dst, `:{"measured":`...)
+		dst = appendFloat(dst, o.Measured)
+		dst = append(dst, `,"predicted":`...)
+		dst = appendFloat(dst, o.Predicted)
+		dst = append(dst, `,"innovation":`...)
+		dst = appendFloat(dst, o.Innovation)
+		dst = append(dst, `,"innovation_std":`...)
+		dst = appendFloat(dst, o.InnovationStd)
+		dst = append(dst, `,"age":`...)
+		dst = appendFloat(dst, o.Age)
+		dst = append(dst, `,"used":`...)
+		dst = strconv.AppendBool(dst, o.Used)
+		dst = append(dst, `,"outlier":`...)
+		dst = strconv.AppendBool(dst, o.Outlier)
+		dst = append(dst, `,"unit":`...)
+		dst = appendString(dst, o.Unit)
+		dst = append(dst, '}')
+	}
+	dst = append(dst, `},"nis":`...)
+	dst = appendFloat(dst, est.NIS)
+	dst = append(dst, `,"dof":`...)
+	dst = strconv.AppendInt(dst, int64(est.Dof), 10)
+	dst = append(dst, `,"nis_mean":`...)
+	dst = appendFloat(dst, est.NISMean)
+	dst = append(dst, `,"nis_band":[`...)
+	dst = appendFloat(dst, est.NISBand[0])
+	dst = append(dst, ',')
+	dst = appendFloat(dst, est.NISBand[1])
+	dst = append(dst, "]}"...)
+	return dst
+}
+
+// appendFloat writes v as a JSON number, or null when it is NaN or infinite.
+func appendFloat(dst []byte, v float64) []byte {
+	if math.IsNaN(v) || math.IsInf(v, 0) {
+		return append(dst, "null"...)
+	}
+	return strconv.AppendFloat(dst, v, 'g', -1, 64)
+}
+
+const hexDigits = "0123456789abcdef"
+
+// appendString writes s as a JSON string: quotes, backslashes and control
+// characters escaped, invalid UTF-8 replaced by U+FFFD, everything else as is.
+func appendString(dst []byte, s string) []byte {
+	dst = append(dst, '"')
+	for i := 0; i < len(s); {
+		c := s[i]
+		if c < utf8.RuneSelf {
+			switch {
+			case c == '"' || c == '\\':
+				dst = append(dst, '\\', c)
+			case c == '\n':
+				dst = append(dst, '\\', 'n')
+			case c == '\r':
+				dst = append(dst, '\\', 'r')
+			case c == '\t':
+				dst = append(dst, '\\', 't')
+			case c < 0x20:
+				dst = append(dst, '\\', 'u', '0', '0', hexDigits[c>>4], hexDigits[c&0xf])
+			default:
+				dst = append(dst, c)
+			}
+			i++
+			continue
+		}
+		r, size := utf8.DecodeRuneInString(s[i:])
+		if r == utf8.RuneError && size == 1 {
+			dst = append(dst, `\ufffd`...)
+		} else {
+			dst = append(dst, s[i:i+size]...)
+		}
+		i += size
+	}
+	return append(dst, '"')
+}
