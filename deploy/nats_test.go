@@ -28,12 +28,22 @@ import (
 	"gopkg.in/yaml.v3"
 )
 
-// The NATS files name the paths of a real installation (/etc/nats/…, /var/lib/nats/…) and take
-// their credentials from the environment. The tests copy them into a temporary directory, point
-// the paths there, generate a throwaway CA with server and client certificates, a daemon nkey
-// and bcrypt hashes of test passwords, and set the environment variables to those.
+// The NATS files name the paths of a real installation (/etc/nats/…, /var/lib/nats/…) and hold
+// placeholder credentials. The tests copy them into a temporary directory, point the paths there,
+// generate a throwaway CA with server and client certificates, and — where a test needs users
+// that can log in — replace the placeholders with a fresh daemon nkey and bcrypt hashes of test
+// passwords.
 
 var natsFiles = []string{"nats-1.conf", "nats-2.conf", "nats-3.conf", "cluster.conf", "accounts.conf"}
+
+// placeholderNkey is the daemon user's placeholder in accounts.conf: a valid public key whose
+// seed was discarded.
+const placeholderNkey = "UCODZMXZ7LEVWQELFBJNXIXOW22IBN23G4R56MGGVP3ZOKGBJY5D5FVV"
+
+// placeholderHash is the placeholder bcrypt string of a password user in accounts.conf.
+func placeholderHash(user string) string {
+	return `"$2a$11$REPLACE.WITH.THE.BCRYPT.HASH.OF.THE.` + strings.ToUpper(strings.ReplaceAll(user, "-", "_")) + `.PASSWORD"`
+}
 
 // Test passwords of the users that log in with one; never used outside these tests.
 var natsPasswords = map[string]string{
@@ -43,35 +53,51 @@ var natsPasswords = map[string]string{
 	"admin":        "admin-test-password",
 }
 
-// natsEnvNames maps each password user to the environment variable accounts.conf reads.
-var natsEnvNames = map[string]string{
-	"engineer":     "SURMISE_ENGINEER_PASSWORD_HASH",
-	"dashboard":    "SURMISE_DASHBOARD_PASSWORD_HASH",
-	"plant-bridge": "SURMISE_BRIDGE_PASSWORD_HASH",
-	"admin":        "NATS_SYSTEM_PASSWORD_HASH",
-}
-
 // natsSetup is a prepared copy of deploy/nats.
 type natsSetup struct {
 	dir              string
-	env              []string // NAME=value of every credential variable
 	daemon           nkeys.KeyPair
 	daemonPub        string
-	ca, cert, key    string // client certificate files (for every test client)
+	ca, cert, key    string // the CA, and a client certificate for every test client
 	stranger, strKey string // a client certificate from another CA
 }
 
 func (s *natsSetup) conf(name string) string { return filepath.Join(s.dir, name) }
 
-// setupNATS copies the configs and makes credentials. It does not touch the process
-// environment; setNATSEnv does.
-func setupNATS(t *testing.T) *natsSetup {
+// setupNATS copies the configs and makes certificates; with credentials, it also replaces the
+// placeholder credentials with test ones (each placeholder must occur exactly once).
+func setupNATS(t *testing.T, credentials bool) *natsSetup {
 	t.Helper()
 	s := &natsSetup{dir: t.TempDir()}
+	kp, err := nkeys.CreateUser()
+	if err != nil {
+		t.Fatal(err)
+	}
+	s.daemon = kp
+	if s.daemonPub, err = kp.PublicKey(); err != nil {
+		t.Fatal(err)
+	}
 	for _, f := range natsFiles {
 		text := string(readFile(t, filepath.Join("nats", f)))
 		text = strings.ReplaceAll(text, "/etc/nats/", s.dir+"/")
 		text = strings.ReplaceAll(text, "/var/lib/nats/", s.dir+"/state/")
+		if f == "accounts.conf" && credentials {
+			replace := map[string]string{placeholderNkey: s.daemonPub}
+			for user, pw := range natsPasswords {
+				// The lowest cost keeps the test fast; deployments use 11 or more.
+				h, err := bcrypt.GenerateFromPassword([]byte(pw), bcrypt.MinCost)
+				if err != nil {
+					t.Fatal(err)
+				}
+				replace[placeholderHash(user)] = `"` + string(h) + `"`
+			}
+			for old, new := range replace {
+				if n := strings.Count(text, old); n != 1 {
+					t.Fatalf("accounts.conf: placeholder %s occurs %d times, want once", old, n)
+				}
+				text = strings.Replace(text, old, new, 1)
+			}
+		}
 		if err := os.WriteFile(s.conf(f), []byte(text), 0o600); err != nil {
 			t.Fatal(err)
 		}
@@ -94,34 +120,33 @@ func setupNATS(t *testing.T) *natsSetup {
 	s.stranger, s.strKey = filepath.Join(s.dir, "stranger.pem"), filepath.Join(s.dir, "stranger-key.pem")
 	writePEM(t, s.stranger, "CERTIFICATE", str.Raw)
 	writeKey(t, s.strKey, strKey)
-
-	kp, err := nkeys.CreateUser()
-	if err != nil {
-		t.Fatal(err)
-	}
-	s.daemon = kp
-	if s.daemonPub, err = kp.PublicKey(); err != nil {
-		t.Fatal(err)
-	}
-	s.env = append(s.env, "SURMISE_DAEMON_NKEY="+s.daemonPub)
-	for user, pw := range natsPasswords {
-		// The lowest cost keeps the test fast; deployments use 11 or more (accounts.conf).
-		h, err := bcrypt.GenerateFromPassword([]byte(pw), bcrypt.MinCost)
-		if err != nil {
-			t.Fatal(err)
-		}
-		s.env = append(s.env, natsEnvNames[user]+"="+string(h))
-	}
 	return s
 }
 
-// setNATSEnv sets the credential variables for this test (the server's parser reads them from
-// the process environment).
-func (s *natsSetup) setNATSEnv(t *testing.T) {
-	for _, kv := range s.env {
-		k, v, _ := strings.Cut(kv, "=")
-		t.Setenv(k, v)
+// start runs a server from nats-1.conf alone on loopback: without its cluster routes, with a
+// temporary JetStream store and no monitoring port; everything else as configured (mutual TLS,
+// accounts, users, permissions). It returns the client URL.
+func (s *natsSetup) start(t *testing.T) string {
+	t.Helper()
+	opts := &server.Options{}
+	if err := opts.ProcessConfigFile(s.conf("nats-1.conf")); err != nil {
+		t.Fatalf("nats-1.conf: %v", err)
 	}
+	opts.Host, opts.Port = "127.0.0.1", -1
+	opts.HTTPHost, opts.HTTPPort = "", 0
+	opts.Cluster, opts.Routes = server.ClusterOpts{}, nil
+	opts.StoreDir = t.TempDir()
+	opts.NoSigs, opts.NoLog = true, true
+	srv, err := server.NewServer(opts)
+	if err != nil {
+		t.Fatalf("starting a server from nats-1.conf: %v", err)
+	}
+	srv.Start()
+	t.Cleanup(func() { srv.Shutdown(); srv.WaitForShutdown() })
+	if !srv.ReadyForConnections(10 * time.Second) {
+		t.Fatal("the server did not become ready within 10 s")
+	}
+	return fmt.Sprintf("tls://127.0.0.1:%d", srv.Addr().(*net.TCPAddr).Port)
 }
 
 // newCert makes an ECDSA certificate: a self-signed CA when parent is nil, else a leaf for
@@ -182,8 +207,7 @@ func writeKey(t *testing.T, path string, key *ecdsa.PrivateKey) {
 // TestNATSConfigs parses each node's configuration with the server's own parser, as
 // `nats-server -t` does, and fails on warnings too (a plaintext password is one).
 func TestNATSConfigs(t *testing.T) {
-	s := setupNATS(t)
-	s.setNATSEnv(t)
+	s := setupNATS(t, true)
 	names := map[string]bool{}
 	for n := 1; n <= 3; n++ {
 		path := s.conf(fmt.Sprintf("nats-%d.conf", n))
@@ -228,7 +252,7 @@ func TestNATSConfigs(t *testing.T) {
 			t.Errorf("nats-%d.conf: users %v, want %v", n, users, want)
 		}
 		if len(opts.Nkeys) != 1 || opts.Nkeys[0].Nkey != s.daemonPub {
-			t.Errorf("nats-%d.conf: want the daemon's nkey user from SURMISE_DAEMON_NKEY", n)
+			t.Errorf("nats-%d.conf: want the daemon's nkey user, and no other", n)
 		} else if p := opts.Nkeys[0].Permissions; p == nil || p.Response == nil {
 			t.Errorf("nats-%d.conf: the daemon must answer requests through allow_responses", n)
 		}
@@ -244,24 +268,27 @@ func TestNATSConfigs(t *testing.T) {
 	}
 }
 
-// TestNATSConfigsFailClosed: without its credential variables the configuration is refused,
-// rather than running with a user that has no password.
-func TestNATSConfigsFailClosed(t *testing.T) {
-	s := setupNATS(t)
-	s.setNATSEnv(t)
-	for _, v := range []string{"SURMISE_ENGINEER_PASSWORD_HASH", "SURMISE_DAEMON_NKEY"} {
-		t.Run(v, func(t *testing.T) {
-			t.Setenv(v, "")
-			os.Unsetenv(v)
-			opts := &server.Options{}
-			err := opts.ProcessConfigFile(s.conf("nats-1.conf"))
-			if err == nil {
-				t.Fatalf("nats-1.conf accepted with %s unset", v)
+// TestNATSPlaceholdersLockOut starts a server from the unedited accounts.conf: every user
+// exists, and none can log in until its placeholder is replaced — not with an empty password,
+// not with the placeholder's own text (it must be taken as a bcrypt hash, not a plaintext
+// password), not with another nkey.
+func TestNATSPlaceholdersLockOut(t *testing.T) {
+	if !nkeys.IsValidPublicUserKey(placeholderNkey) {
+		t.Fatalf("the placeholder nkey %s is not a valid user public key", placeholderNkey)
+	}
+	s := setupNATS(t, false)
+	url := s.start(t)
+	for user := range natsPasswords {
+		for _, pw := range []string{"", strings.Trim(placeholderHash(user), `"`), natsPasswords[user], "password"} {
+			if c, err := s.connect(t, url, nats.UserInfo(user, pw)); err == nil {
+				c.Close()
+				t.Errorf("%s logged in with password %q before its placeholder was replaced", user, pw)
 			}
-			if !strings.Contains(err.Error(), v) {
-				t.Errorf("the error does not name %s: %v", v, err)
-			}
-		})
+		}
+	}
+	if c, err := s.connect(t, url, nats.Nkey(s.daemonPub, s.daemon.Sign)); err == nil {
+		c.Close()
+		t.Error("a new daemon nkey logged in before the placeholder was replaced")
 	}
 }
 
@@ -269,30 +296,24 @@ func TestNATSConfigsFailClosed(t *testing.T) {
 // PATH (CI installs it: go install github.com/nats-io/nats-server/v2@v2.15.2).
 func TestNATSServerConfigTest(t *testing.T) {
 	bin := requireTool(t, "nats-server", "go install github.com/nats-io/nats-server/v2@v2.15.2")
-	s := setupNATS(t)
-	for n := 1; n <= 3; n++ {
-		path := s.conf(fmt.Sprintf("nats-%d.conf", n))
-		out, err := runTool(t, s.env, bin, "-t", "-c", path)
-		if err != nil || !strings.Contains(out, "is valid") {
-			t.Errorf("nats-server -t -c nats-%d.conf: %v\n%s", n, err, out)
+	for _, credentials := range []bool{false, true} {
+		s := setupNATS(t, credentials)
+		for n := 1; n <= 3; n++ {
+			out, err := runTool(t, nil, bin, "-t", "-c", s.conf(fmt.Sprintf("nats-%d.conf", n)))
+			if err != nil || !strings.Contains(out, "is valid") {
+				t.Errorf("nats-server -t -c nats-%d.conf (placeholders replaced: %v): %v\n%s", n, credentials, err, out)
+			}
 		}
 	}
-	// Without a credential variable the binary refuses it too.
-	if out, err := runTool(t, withoutVar(s.env, "SURMISE_DAEMON_NKEY"), bin, "-t", "-c", s.conf("nats-1.conf")); err == nil {
-		t.Errorf("nats-server -t accepted nats-1.conf without SURMISE_DAEMON_NKEY:\n%s", out)
+	// And it catches a broken file: an nkey that is not one.
+	s := setupNATS(t, false)
+	text := string(readFile(t, s.conf("accounts.conf")))
+	if err := os.WriteFile(s.conf("accounts.conf"), []byte(strings.Replace(text, placeholderNkey, "UNOTANKEY", 1)), 0o600); err != nil {
+		t.Fatal(err)
 	}
-}
-
-// withoutVar drops NAME=… from env. (runTool adds env to this process's environment, which
-// holds none of the credential variables: this test does not call setNATSEnv.)
-func withoutVar(env []string, name string) []string {
-	var out []string
-	for _, kv := range env {
-		if !strings.HasPrefix(kv, name+"=") {
-			out = append(out, kv)
-		}
+	if out, err := runTool(t, nil, bin, "-t", "-c", s.conf("nats-1.conf")); err == nil {
+		t.Errorf("nats-server -t accepted an invalid nkey:\n%s", out)
 	}
-	return out
 }
 
 // plantSubjects reads the demo plant's wiring: the subjects of its inputs and outputs and its
@@ -397,32 +418,11 @@ func (c *client) noViolations(t *testing.T, who string) {
 	}
 }
 
-// TestNATSPermissions starts a server from nats-1.conf — alone on loopback, without its cluster
-// routes and with a temporary JetStream store, everything else as configured: mutual TLS, the
-// accounts, users and permissions — and checks what each user may and may not do with the demo
-// plant's subjects.
+// TestNATSPermissions starts a server from nats-1.conf (see start) with test credentials and
+// checks what each user may and may not do with the demo plant's subjects.
 func TestNATSPermissions(t *testing.T) {
-	s := setupNATS(t)
-	s.setNATSEnv(t)
-	opts := &server.Options{}
-	if err := opts.ProcessConfigFile(s.conf("nats-1.conf")); err != nil {
-		t.Fatalf("nats-1.conf: %v", err)
-	}
-	opts.Host, opts.Port = "127.0.0.1", -1
-	opts.HTTPHost, opts.HTTPPort = "", 0
-	opts.Cluster, opts.Routes = server.ClusterOpts{}, nil
-	opts.StoreDir = t.TempDir()
-	opts.NoSigs, opts.NoLog = true, true
-	srv, err := server.NewServer(opts)
-	if err != nil {
-		t.Fatalf("starting a server from nats-1.conf: %v", err)
-	}
-	srv.Start()
-	t.Cleanup(func() { srv.Shutdown(); srv.WaitForShutdown() })
-	if !srv.ReadyForConnections(10 * time.Second) {
-		t.Fatal("the server did not become ready within 10 s")
-	}
-	url := fmt.Sprintf("tls://127.0.0.1:%d", srv.Addr().(*net.TCPAddr).Port)
+	s := setupNATS(t, true)
+	url := s.start(t)
 
 	name, samples, publish := plantSubjects(t)
 	estimate, shadow := publish+".estimate", publish+".shadow.estimate"
