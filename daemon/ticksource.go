@@ -209,7 +209,8 @@ func (s *Scheduler) Run(ctx context.Context) error {
 
 // dispatch queues every tick due at or before now, counts the skipped ones,
 // and returns the time the timing goroutine should wake next (ok is false
-// when there is no job, and the source then waits for Add or ctx only).
+// when there is no job and the source can be woken by Add: it then waits for
+// Add or ctx only).
 func (s *Scheduler) dispatch(now time.Time) (wake time.Time, ok bool) {
 	s.mu.Lock()
 	defer s.mu.Unlock()
@@ -235,19 +236,21 @@ func (s *Scheduler) dispatch(now time.Time) (wake time.Time, ok bool) {
 		j.next += j.period
 		heap.Fix(&s.jobs, 0)
 	}
-	if len(s.jobs) == 0 {
-		s.notBefore = 0
-		return time.Time{}, false
-	}
-	next := s.jobs[0].next
-	if limit := s.src.maxSleep(); limit > 0 {
-		// A source that cannot be woken early sleeps at most limit, so
-		// that Run notices ctx; Add will not schedule before next.
-		if next > off+limit {
-			next = off + limit
+	limit := s.src.maxSleep()
+	if limit == 0 { // a source that Add can wake
+		if len(s.jobs) == 0 {
+			return time.Time{}, false
 		}
-		s.notBefore = next
+		return s.base.Add(s.jobs[0].next), true
 	}
+	// A source that cannot be woken early sleeps at most limit, so that
+	// Run notices ctx, and Add schedules nothing before the end of the
+	// sleep.
+	next := off + limit
+	if len(s.jobs) > 0 && s.jobs[0].next < next {
+		next = s.jobs[0].next
+	}
+	s.notBefore = next
 	return s.base.Add(next), true
 }
 

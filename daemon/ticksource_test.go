@@ -367,3 +367,37 @@ func ExampleScheduler() {
 	defer remove()
 	_ = s.Run(ctx) // returns once ctx is done and the running tick has finished
 }
+
+// cappedSource stands for a source that cannot be woken early, like the
+// Linux one, for tests of dispatch alone.
+type cappedSource struct{ timerSource }
+
+func (cappedSource) maxSleep() time.Duration { return 20 * time.Millisecond }
+
+func TestSchedulerAddDuringUninterruptibleSleep(t *testing.T) {
+	// A base in the future makes time.Since(base) negative, so that the
+	// test does not depend on how fast it runs: only notBefore counts.
+	base := time.Now().Add(time.Hour)
+	s := newTestScheduler(base)
+	s.src = &cappedSource{}
+	s.running = true
+
+	// No job: the source sleeps its longest, 20 ms from now (5 ms).
+	wake, ok := s.dispatch(base.Add(5 * time.Millisecond))
+	if !ok || !wake.Equal(base.Add(25*time.Millisecond)) {
+		t.Fatalf("idle wake = +%v, %v; want +25ms", wake.Sub(base), ok)
+	}
+	// A job added during that sleep starts when it ends, not before: its
+	// first tick is not missed for a sleep it could not interrupt.
+	var got []Tick
+	s.Add("j", time.Millisecond, func(tk Tick) { got = append(got, tk) })
+	s.dispatch(base.Add(25 * time.Millisecond))
+	s.drain()
+	if len(got) != 1 || got[0].Seq != 0 || got[0].Missed != 0 || !got[0].Due.Equal(base.Add(25*time.Millisecond)) {
+		t.Fatalf("first tick = %+v, want Seq 0, Missed 0, due at +25ms", got)
+	}
+	// With a 1 ms job the sleeps are 1 ms long again.
+	if wake, _ := s.dispatch(base.Add(25 * time.Millisecond)); !wake.Equal(base.Add(26 * time.Millisecond)) {
+		t.Errorf("next wake = +%v, want +26ms", wake.Sub(base))
+	}
+}
