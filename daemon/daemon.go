@@ -1,0 +1,559 @@
+package daemon
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"log/slog"
+	"net"
+	"net/http"
+	"os"
+	"path/filepath"
+	"slices"
+	"sync"
+	"sync/atomic"
+	"time"
+
+	sd "github.com/coreos/go-systemd/v22/daemon"
+	"github.com/nats-io/nats-server/v2/server"
+	"github.com/prometheus/client_golang/prometheus"
+
+	"surmise/config"
+	"surmise/estimator"
+)
+
+// drainTimeout bounds the NATS drain at shutdown: subscriptions first, then
+// the pending publishes.
+const drainTimeout = 5 * time.Second
+
+// PlantSpec is one estimator for a Daemon to run: a validated plant file and
+// its gains file, loaded for that plant (config.LoadGains). The daemon runs
+// the gains file's active set.
+type PlantSpec struct {
+	Plant *config.Plant
+	Gains *config.GainsFile
+}
+
+// EstimateSubject returns the subject the estimates of plant are published
+// on: "<publish prefix>.estimate", by default surmise.<name>.estimate.
+func EstimateSubject(plant *config.Plant) string {
+	prefix := plant.Publish
+	if prefix == "" {
+		prefix = config.PublishRoot + "." + plant.Name
+	}
+	return prefix + ".estimate"
+}
+
+// Options configures a Daemon. A zero field means its default; New sets the
+// defaults (in one place, setDefaults) and checks the rest.
+type Options struct {
+	// Plants are the estimators to run: at least one, with distinct names.
+	Plants []PlantSpec
+
+	// Bus says how to reach NATS. With neither Bus.URL nor Bus.Embedded
+	// the daemon starts its own server in-process (see EmbeddedPort and
+	// StateDir) and shuts it down when it stops; a server given in
+	// Bus.Embedded belongs to the caller.
+	Bus BusOptions
+
+	// EmbeddedPort is the loopback port of the daemon's own server, as in
+	// EmbeddedOptions.Port: 0 means DefaultEmbeddedPort when it is free,
+	// else a random free port; -1 always a random free port.
+	EmbeddedPort int
+
+	// Listen is the HTTP address of /metrics, /healthz and /readyz;
+	// default DefaultHTTPAddr. Port 0 picks a free port (see
+	// Endpoints.HTTPAddr).
+	Listen string
+
+	// Logger receives the daemon's log; nil means none. The daemon never
+	// logs per tick, and refused samples at most once per signal every
+	// 10 s.
+	Logger *slog.Logger
+
+	// Registry receives the daemon's metrics, and /metrics serves it. Nil
+	// means a new registry, with the Go runtime, process and build
+	// information collectors as well.
+	Registry *prometheus.Registry
+
+	// StateDir holds the embedded server's JetStream store (under
+	// StateDir/nats). Empty means a temporary directory, removed when the
+	// daemon stops.
+	StateDir string
+
+	// Scheduler configures the one tick scheduler of the process: its
+	// clock source (SchedulerOptions.PortableTimer) and its workers.
+	Scheduler SchedulerOptions
+
+	// Notify sends a state to the service manager ("READY=1",
+	// "WATCHDOG=1", "STOPPING=1"). Nil means sd_notify, which does nothing
+	// when the process was not started by systemd (no NOTIFY_SOCKET).
+	Notify func(state string) error
+
+	// WatchdogInterval is how often the daemon tells the service manager
+	// it is alive ("WATCHDOG=1", sent only while Healthy). Zero means half
+	// the interval systemd asks for (WATCHDOG_USEC), or never when it asks
+	// for none; negative means never.
+	WatchdogInterval time.Duration
+
+	// Started, when not nil, is called once by Run when the daemon has
+	// started — server up, listeners bound, subscriptions made, ticks
+	// scheduled — with the addresses it uses.
+	Started func(Endpoints)
+}
+
+// Endpoints are the addresses a running Daemon uses.
+type Endpoints struct {
+	// BusURL is the URL of the NATS server: the embedded server's client
+	// URL on 127.0.0.1, or Options.Bus.URL.
+	BusURL string
+	// Embedded is true when the daemon runs its own server.
+	Embedded bool
+	// HTTPAddr is the address the HTTP server listens on.
+	HTTPAddr net.Addr
+}
+
+// setDefaults fills in the zero fields of o that have a default.
+func (o *Options) setDefaults() {
+	if o.Listen == "" {
+		o.Listen = DefaultHTTPAddr
+	}
+	if o.Logger == nil {
+		o.Logger = slog.New(slog.DiscardHandler)
+	}
+	if o.Notify == nil {
+		o.Notify = func(state string) error {
+			_, err := sd.SdNotify(false, state)
+			return err
+		}
+	}
+}
+
+// validate checks o after setDefaults and returns every problem found.
+func (o *Options) validate() error {
+	var errs []error
+	if len(o.Plants) == 0 {
+		errs = append(errs, errors.New("no plant to run"))
+	}
+	seen := map[string]bool{}
+	for i, p := range o.Plants {
+		switch {
+		case p.Plant == nil || p.Plant.Model == nil:
+			errs = append(errs, fmt.Errorf("plant %d: no plant", i))
+			continue
+		case p.Gains == nil:
+			errs = append(errs, fmt.Errorf("plant %s: no gains file", p.Plant.Name))
+			continue
+		}
+		name := p.Plant.Name
+		if seen[name] {
+			errs = append(errs, fmt.Errorf("plant %s (%s): another plant file has the same name; estimator names must be unique in a daemon", name, p.Plant.Path))
+		}
+		seen[name] = true
+		if fp := config.Fingerprint(p.Plant.Model); p.Gains.Fingerprint != fp {
+			errs = append(errs, fmt.Errorf("plant %s: its gains were designed for model %s, the plant's model is %s", name, p.Gains.Fingerprint, fp))
+		}
+		if p.Gains.Set(p.Gains.Active) == nil {
+			errs = append(errs, fmt.Errorf("plant %s: the active gain set %q is not in the gains file", name, p.Gains.Active))
+		}
+		if periodOf(p.Plant) <= 0 {
+			errs = append(errs, fmt.Errorf("plant %s: sample time %v s is not a positive duration", name, p.Plant.Model.Ts))
+		}
+	}
+	if o.Bus.URL == "" && o.Bus.Embedded == nil && (o.EmbeddedPort < -1 || o.EmbeddedPort > 65535) {
+		errs = append(errs, fmt.Errorf("embedded server port %d: want 1 to 65535, 0 for the default or -1 for any free port", o.EmbeddedPort))
+	}
+	if _, _, err := net.SplitHostPort(o.Listen); err != nil {
+		errs = append(errs, fmt.Errorf("HTTP listen address: %w", err))
+	}
+	if o.Scheduler.Workers < 0 {
+		errs = append(errs, fmt.Errorf("scheduler workers %d: want 0 (one per CPU) or more", o.Scheduler.Workers))
+	}
+	if err := errors.Join(errs...); err != nil {
+		return fmt.Errorf("daemon options: %w", err)
+	}
+	return nil
+}
+
+// periodOf returns the tick period of a plant, its sample time.
+func periodOf(p *config.Plant) time.Duration {
+	return time.Duration(p.Model.Ts * float64(time.Second))
+}
+
+// Daemon runs estimators on the bus: one per plant, all ticked by one
+// scheduler, each subscribed to its plant's signal subjects and publishing
+// one estimate per tick; with an HTTP server for metrics, health and
+// readiness, and sd_notify for systemd. Build it with New, run it with Run.
+type Daemon struct {
+	opts       Options
+	log        *slog.Logger
+	reg        *prometheus.Registry
+	metrics    *Metrics
+	sched      *Scheduler
+	http       *HTTPServer
+	estimators []*Estimator
+
+	// epoch is read by New; tick and start times are kept as nanoseconds
+	// since it (monotonic).
+	epoch   time.Time
+	started atomic.Int64 // when Run started, 0 before
+
+	// listeners are the in-process subscribers to estimates (OnEstimate):
+	// nil when there are none, so that a tick without listeners costs one
+	// atomic load.
+	listenMu  sync.Mutex
+	listeners atomic.Pointer[[]*listener]
+
+	ran atomic.Bool
+
+	// Set by Run.
+	ns          *server.Server // the embedded server, when it is ours
+	tempState   string         // a temporary state directory to remove
+	bus         *Bus
+	schedCancel context.CancelFunc
+	schedDone   chan struct{}
+}
+
+// New checks opts, prepares every plant's active gain set, registers the
+// metrics and builds one engine per plant. It starts no goroutine and opens
+// nothing: Run does. When it fails, it has registered nothing.
+func New(opts Options) (*Daemon, error) {
+	opts.Plants = slices.Clone(opts.Plants)
+	opts.setDefaults()
+	if err := opts.validate(); err != nil {
+		return nil, err
+	}
+	var errs []error
+	prepared := make([]*estimator.Prepared, len(opts.Plants))
+	for i, p := range opts.Plants {
+		set := p.Gains.Set(p.Gains.Active).Set
+		pr, err := estimator.Prepare(p.Plant.Model, set, p.Plant.Gate)
+		if err != nil {
+			errs = append(errs, fmt.Errorf("plant %s: %w", p.Plant.Name, err))
+		}
+		prepared[i] = pr
+	}
+	if err := errors.Join(errs...); err != nil {
+		return nil, err
+	}
+
+	reg := opts.Registry
+	if reg == nil {
+		reg = prometheus.NewRegistry()
+		if err := RegisterRuntime(reg); err != nil {
+			return nil, err
+		}
+	}
+	m, err := newMetrics(reg)
+	if err != nil {
+		return nil, err
+	}
+	d := &Daemon{
+		opts:    opts,
+		log:     opts.Logger,
+		reg:     reg,
+		metrics: m,
+		sched:   NewScheduler(opts.Scheduler),
+		epoch:   time.Now(),
+	}
+	var longest time.Duration
+	for i, p := range opts.Plants {
+		d.estimators = append(d.estimators, newEstimator(d, p, prepared[i]))
+		longest = max(longest, periodOf(p.Plant))
+	}
+	d.http, err = NewHTTPServer(HTTPOptions{
+		Addr:     opts.Listen,
+		Gatherer: reg,
+		LastTick: d.oldestTick,
+		Period:   longest,
+		Ready:    d.missing,
+		Log:      d.log,
+	})
+	if err != nil {
+		return nil, err
+	}
+	return d, nil
+}
+
+// newMetrics is NewMetrics with an error instead of a panic when the
+// registry already holds the daemon's metrics (two daemons on one registry:
+// an embedder's mistake that New can report).
+func newMetrics(reg prometheus.Registerer) (m *Metrics, err error) {
+	defer func() {
+		if r := recover(); r != nil {
+			err = fmt.Errorf("daemon metrics: %v", r)
+		}
+	}()
+	return NewMetrics(reg), nil
+}
+
+// Estimators returns the daemon's estimators, in the order of Options.Plants.
+func (d *Daemon) Estimators() []*Estimator { return slices.Clone(d.estimators) }
+
+// Metrics returns the daemon's metrics.
+func (d *Daemon) Metrics() *Metrics { return d.metrics }
+
+// Handle registers handler for pattern on the daemon's HTTP server, beside
+// /metrics, /healthz and /readyz (the live page adds "GET /{$}"); see
+// HTTPServer.Handle.
+func (d *Daemon) Handle(pattern string, handler http.Handler) { d.http.Handle(pattern, handler) }
+
+// now returns the time since the daemon's epoch in nanoseconds, at least 1.
+func (d *Daemon) now() int64 { return max(int64(time.Since(d.epoch)), 1) }
+
+// at turns a d.now reading back into a time.
+func (d *Daemon) at(ns int64) time.Time { return d.epoch.Add(time.Duration(ns)) }
+
+// Run starts the daemon, runs it until ctx is done or a part of it fails,
+// then stops it in order and returns. It may be called once.
+//
+// Start-up: the embedded NATS server when no server is given (its URL is
+// logged), the connection (which keeps retrying in the background when the
+// server is not there yet), one subscription per signal subject of every
+// estimator, the HTTP listener, one scheduled job per estimator at its
+// plant's sample time; then READY=1 to the service manager.
+//
+// Shutdown: STOPPING=1; the ticks stop at a tick boundary (a tick that has
+// started finishes, its publish included, and no other starts); the
+// connection drains (subscriptions, then pending publishes) and closes; the
+// HTTP server finishes its requests; the embedded server shuts down; a
+// temporary state directory is removed. Every goroutine the daemon started
+// has returned when Run does.
+func (d *Daemon) Run(ctx context.Context) (err error) {
+	if !d.ran.CompareAndSwap(false, true) {
+		return errors.New("daemon: Run called twice")
+	}
+	g := NewGroup(ctx)
+	defer func() { err = errors.Join(err, d.shutdown(g)) }()
+	ep, err := d.start(g)
+	if err != nil {
+		return err
+	}
+	if err := d.opts.Notify(sd.SdNotifyReady); err != nil {
+		d.log.Warn("sd_notify READY=1 failed", "error", err)
+	}
+	d.log.Info("daemon started", "bus", ep.BusURL, "embedded", ep.Embedded, "http", ep.HTTPAddr.String(), "estimators", len(d.estimators))
+	if d.opts.Started != nil {
+		d.opts.Started(ep)
+	}
+	<-g.Done()
+	return nil
+}
+
+// start brings the daemon up; on error, shutdown undoes what was done.
+func (d *Daemon) start(g *Group) (Endpoints, error) {
+	d.started.Store(d.now())
+	var ep Endpoints
+	bo := d.opts.Bus
+	switch {
+	case bo.Embedded != nil:
+		ep.BusURL = bo.Embedded.ClientURL()
+	case bo.URL != "":
+		ep.BusURL = bo.URL
+	default:
+		dir := d.opts.StateDir
+		if dir == "" {
+			tmp, err := os.MkdirTemp("", "surmise-state-")
+			if err != nil {
+				return ep, fmt.Errorf("temporary state directory: %w", err)
+			}
+			d.tempState, dir = tmp, tmp
+			d.log.Info("no state directory given: the embedded server's store is temporary", "dir", tmp)
+		}
+		ns, err := StartEmbedded(EmbeddedOptions{Port: d.opts.EmbeddedPort, StoreDir: filepath.Join(dir, "nats"), Log: d.log})
+		if err != nil {
+			return ep, err
+		}
+		d.ns, bo.Embedded = ns, ns
+		ep.BusURL, ep.Embedded = ns.ClientURL(), true
+	}
+
+	bus, err := Connect(bo, d.metrics, d.log)
+	if err != nil {
+		return ep, err
+	}
+	d.bus = bus
+	for _, e := range d.estimators {
+		if err := e.subscribe(bus.Conn()); err != nil {
+			return ep, err
+		}
+	}
+
+	if err := d.http.Listen(); err != nil {
+		return ep, err
+	}
+	ep.HTTPAddr = d.http.Addr()
+	g.Go("http", d.http.Serve)
+
+	// The scheduler has a context of its own: shutdown stops the ticks
+	// first, and waits for them, before it closes what they publish on.
+	schedCtx, cancel := context.WithCancel(context.Background())
+	d.schedCancel, d.schedDone = cancel, make(chan struct{})
+	for _, e := range d.estimators {
+		d.sched.Add(e.name, e.period, e.tick)
+	}
+	g.Go("scheduler", func(context.Context) error {
+		defer close(d.schedDone)
+		return d.sched.Run(schedCtx)
+	})
+
+	if every := d.watchdogInterval(); every > 0 {
+		g.Go("watchdog", func(ctx context.Context) error {
+			d.watchdog(ctx, every)
+			return nil
+		})
+	}
+	return ep, nil
+}
+
+// shutdown stops what start started, in order; see Run.
+func (d *Daemon) shutdown(g *Group) error {
+	if err := d.opts.Notify(sd.SdNotifyStopping); err != nil {
+		d.log.Warn("sd_notify STOPPING=1 failed", "error", err)
+	}
+	d.log.Info("daemon stopping")
+	var errs []error
+	if d.schedCancel != nil {
+		d.schedCancel()
+		<-d.schedDone
+	}
+	if d.bus != nil {
+		if err := d.bus.Close(drainTimeout); err != nil {
+			errs = append(errs, err)
+		}
+	}
+	// The HTTP server stops with the group's context.
+	if err := g.Stop(); err != nil {
+		errs = append(errs, err)
+	}
+	if d.ns != nil {
+		d.ns.Shutdown()
+		d.ns.WaitForShutdown()
+	}
+	if d.tempState != "" {
+		if err := os.RemoveAll(d.tempState); err != nil {
+			errs = append(errs, fmt.Errorf("removing the temporary state directory: %w", err))
+		}
+	}
+	for _, e := range d.estimators {
+		e.metrics.SetReady(false)
+	}
+	d.log.Info("daemon stopped")
+	return errors.Join(errs...)
+}
+
+// watchdogInterval is how often to ping the service manager's watchdog, 0
+// for never.
+func (d *Daemon) watchdogInterval() time.Duration {
+	switch w := d.opts.WatchdogInterval; {
+	case w < 0:
+		return 0
+	case w > 0:
+		return w
+	}
+	every, err := sd.SdWatchdogEnabled(false)
+	if err != nil {
+		d.log.Warn("systemd watchdog settings unreadable; not pinging it", "error", err)
+		return 0
+	}
+	return every / 2
+}
+
+// watchdog sends WATCHDOG=1 every interval while the daemon is healthy: a
+// tick loop that stops advancing stops the pings, and the service manager
+// restarts the daemon.
+func (d *Daemon) watchdog(ctx context.Context, every time.Duration) {
+	t := time.NewTicker(every)
+	defer t.Stop()
+	for {
+		select {
+		case <-ctx.Done():
+			return
+		case <-t.C:
+		}
+		if err := d.Healthy(); err != nil {
+			d.log.Warn("not pinging the watchdog", "reason", err)
+			continue
+		}
+		if err := d.opts.Notify(sd.SdNotifyWatchdog); err != nil {
+			d.log.Warn("sd_notify WATCHDOG=1 failed", "error", err)
+		}
+	}
+}
+
+// busConnected reports whether the bus is connected now.
+func (d *Daemon) busConnected() bool { return d.bus != nil && d.bus.Conn().IsConnected() }
+
+// Healthy returns nil while the tick loop advances: every estimator has
+// started a tick within three of its periods (before its first tick, since
+// Run started). A bus outage does not make the daemon unhealthy: it keeps
+// ticking, coasting, and a restart would not bring the bus back.
+func (d *Daemon) Healthy() error {
+	start := d.started.Load()
+	if start == 0 {
+		return errors.New("not running")
+	}
+	now := d.now()
+	var errs []error
+	for _, e := range d.estimators {
+		last := e.lastTick.Load()
+		if last == 0 {
+			last = start
+		}
+		if age := time.Duration(now - last); age > 3*e.period {
+			errs = append(errs, fmt.Errorf("estimator %s: no tick for %v (period %v)", e.name, age.Round(time.Millisecond), e.period))
+		}
+	}
+	return errors.Join(errs...)
+}
+
+// oldestTick returns the start of the oldest of the estimators' latest
+// ticks, the zero time while one has not ticked yet: /healthz fails when it
+// is older than three of the longest period.
+func (d *Daemon) oldestTick() time.Time {
+	oldest := int64(0)
+	for i, e := range d.estimators {
+		last := e.lastTick.Load()
+		if last == 0 {
+			return time.Time{}
+		}
+		if i == 0 || last < oldest {
+			oldest = last
+		}
+	}
+	return d.at(oldest)
+}
+
+// Ready returns nil when the daemon is ready for traffic — the bus is
+// connected, and every estimator has valid gains and has ticked — and
+// otherwise an error that lists what is missing.
+func (d *Daemon) Ready() error {
+	if m := d.missing(); len(m) > 0 {
+		errs := make([]error, len(m))
+		for i, s := range m {
+			errs[i] = errors.New(s)
+		}
+		return errors.Join(errs...)
+	}
+	return nil
+}
+
+// missing lists what keeps the daemon from being ready, for /readyz.
+func (d *Daemon) missing() []string {
+	var m []string
+	if d.started.Load() == 0 {
+		m = append(m, "not running")
+	}
+	if !d.busConnected() {
+		m = append(m, "bus not connected")
+	}
+	for _, e := range d.estimators {
+		if !e.gainsOK.Load() {
+			m = append(m, "estimator "+e.name+": gains not valid")
+		}
+		if e.lastTick.Load() == 0 {
+			m = append(m, "estimator "+e.name+": no tick yet")
+		}
+	}
+	return m
+}
