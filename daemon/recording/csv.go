@@ -1,10 +1,12 @@
 package recording
 
 import (
+	"bytes"
 	"encoding/csv"
 	"errors"
 	"fmt"
 	"io"
+	"io/fs"
 	"math"
 	"slices"
 	"strconv"
@@ -145,6 +147,8 @@ type csvParser struct {
 	sorted    bool
 	amb       ambiguousRun
 	resolvBuf [2]int64
+	scratch   []byte
+	samples   []Sample // grows to the result
 }
 
 // ambiguousRun collects consecutive rows whose local time falls in a
@@ -177,33 +181,38 @@ func newCSVParser(name string, opts CSVOptions) (*csvParser, error) {
 }
 
 func (p *csvParser) read(r io.Reader) (*Recording, error) {
-	cr := csv.NewReader(r)
-	cr.Comma = p.opts.Comma
-	cr.FieldsPerRecord = -1
-	cr.ReuseRecord = true
+	size := inputSize(r)
+	rr := newRowReader(r, p.opts.Comma)
 	p.rec = &Recording{Name: p.name}
 
-	header, err := cr.Read()
+	hf, hl, err := rr.next()
 	if err == io.EOF {
 		return nil, &Error{Name: p.name, Msg: "empty file: want a header row naming the columns"}
 	}
 	if err != nil {
 		return nil, p.csvError(err)
 	}
-	hline, _ := cr.FieldPos(0)
+	header := make([]string, len(hf))
+	for i, f := range hf {
+		header[i] = string(f)
+	}
+	hline := hl[0]
 	if err := p.header(header, hline); err != nil {
 		return nil, err
 	}
 	for {
-		row, err := cr.Read()
+		row, lines, err := rr.next()
 		if err == io.EOF {
 			break
 		}
 		if err != nil {
 			return nil, p.csvError(err)
 		}
-		if err := p.row(cr, row); err != nil {
+		if err := p.row(row, lines); err != nil {
 			return nil, err
+		}
+		if p.rows == reserveAfter && size > 0 {
+			p.reserve(size, rr.offset)
 		}
 	}
 	p.flushAmbiguous()
@@ -220,12 +229,50 @@ func (p *csvParser) read(r io.Reader) (*Recording, error) {
 		}
 	}
 	if !p.sorted {
-		slices.SortStableFunc(p.rec.Samples, func(a, b Sample) int { return a.Time.Compare(b.Time) })
+		slices.SortStableFunc(p.samples, func(a, b Sample) int { return a.Time.Compare(b.Time) })
 	}
 	p.duplicates()
+	p.rec.Samples = p.samples
 	p.rec.TimeFormat = p.format
 	slices.SortStableFunc(p.rec.Issues, func(a, b Issue) int { return a.Line - b.Line })
 	return p.rec, nil
+}
+
+// reserveAfter is the number of rows read before the parser estimates the
+// size of the whole file's Sample slice from the bytes they took.
+const reserveAfter = 512
+
+// inputSize returns the number of bytes r holds, when r can tell: a
+// bytes.Reader, strings.Reader or bytes.Buffer by Len, an os.File by Stat.
+// It returns 0 when it cannot tell.
+func inputSize(r io.Reader) int64 {
+	switch v := r.(type) {
+	case interface{ Len() int }:
+		return int64(v.Len())
+	case interface{ Stat() (fs.FileInfo, error) }:
+		if fi, err := v.Stat(); err == nil && fi.Mode().IsRegular() {
+			if off, err := v.(io.Seeker).Seek(0, io.SeekCurrent); err == nil {
+				return fi.Size() - off
+			}
+		}
+	}
+	return 0
+}
+
+// reserve grows the Sample slice once, to what the rows read so far predict
+// for the whole input, so that a large file is not copied at every doubling.
+// The prediction assumes later rows are like the first ones; it is only a
+// capacity, and append still grows past it if they are not.
+func (p *csvParser) reserve(size, offset int64) {
+	if offset <= 0 || len(p.samples) == 0 {
+		return
+	}
+	rows := float64(size) * float64(p.rows) / float64(offset)
+	want := int(rows*float64(len(p.samples))/float64(p.rows)*1.02) + 64
+	const limit = 1 << 28 // a bound for an estimate gone wrong
+	if want > len(p.samples) && want < limit {
+		p.samples = slices.Grow(p.samples, want-len(p.samples))
+	}
 }
 
 func (p *csvParser) csvError(err error) error {
@@ -299,11 +346,14 @@ func quoteList(h []string) string {
 	return b.String()
 }
 
-func (p *csvParser) row(cr *csv.Reader, row []string) error {
-	line, _ := cr.FieldPos(0)
+func (p *csvParser) row(row [][]byte, lines []int) error {
+	line := lines[0]
+	if line > math.MaxInt32 {
+		return errorf(p.name, line, "", "too many lines")
+	}
 	blank := true
 	for _, f := range row {
-		if strings.TrimSpace(f) != "" {
+		if len(bytes.TrimSpace(f)) != 0 {
 			blank = false
 			break
 		}
@@ -315,7 +365,7 @@ func (p *csvParser) row(cr *csv.Reader, row []string) error {
 	if p.timeIdx >= len(row) {
 		return errorf(p.name, line, tname, "missing: the row has %d fields", len(row))
 	}
-	t, err := p.parseTime(strings.TrimSpace(row[p.timeIdx]), line)
+	t, err := p.parseTime(bytes.TrimSpace(row[p.timeIdx]), lines[p.timeIdx])
 	if err != nil {
 		return err
 	}
@@ -340,7 +390,7 @@ func (p *csvParser) row(cr *csv.Reader, row []string) error {
 	if len(row) > len(p.cols) {
 		extra := 0
 		for _, f := range row[len(p.cols):] {
-			if strings.TrimSpace(f) != "" {
+			if len(bytes.TrimSpace(f)) != 0 {
 				extra++
 			}
 		}
@@ -354,40 +404,49 @@ func (p *csvParser) row(cr *csv.Reader, row []string) error {
 			continue
 		}
 		c := &p.cols[j]
-		cell := strings.TrimSpace(row[j])
-		if cell == "" {
+		text := bytes.TrimSpace(row[j])
+		if len(text) == 0 {
 			continue
 		}
 		if c.skip {
 			c.skipped++
 			continue
 		}
-		v, ok := p.parseValue(cell)
+		v, ok := p.parseValue(text)
 		if !ok {
-			cl, _ := cr.FieldPos(j)
-			p.issue(cl, c.name, fmt.Sprintf("%q is not a number; skipped", cell))
+			p.issue(lines[j], c.name, fmt.Sprintf("%q is not a number; skipped", text))
 			continue
 		}
 		if math.IsNaN(v) || math.IsInf(v, 0) {
-			cl, _ := cr.FieldPos(j)
-			p.issue(cl, c.name, fmt.Sprintf("%q is not a finite number; skipped", cell))
+			p.issue(lines[j], c.name, fmt.Sprintf("%q is not a finite number; skipped", text))
 			continue
 		}
-		p.rec.Samples = append(p.rec.Samples, Sample{Signal: c.name, Value: v, Time: t, Line: line})
+		// Set the fields in place: appending a Sample value would copy
+		// it whole, under a bulk write barrier while the collector runs.
+		k := len(p.samples)
+		if k == cap(p.samples) {
+			p.samples = slices.Grow(p.samples, 1)
+		}
+		p.samples = p.samples[:k+1]
+		smp := &p.samples[k]
+		smp.Signal, smp.Value, smp.Time, smp.Line = c.name, v, t, line
 	}
 	return nil
 }
 
-func (p *csvParser) parseValue(s string) (float64, bool) {
+func (p *csvParser) parseValue(s []byte) (float64, bool) {
 	if p.opts.DecimalComma {
-		if strings.IndexByte(s, '.') >= 0 {
+		if bytes.IndexByte(s, '.') >= 0 {
 			return 0, false
 		}
-		if strings.IndexByte(s, ',') >= 0 {
-			s = strings.Replace(s, ",", ".", 1)
+		if i := bytes.IndexByte(s, ','); i >= 0 {
+			p.scratch = append(p.scratch[:0], s...)
+			p.scratch[i] = '.'
+			s = p.scratch
 		}
 	}
-	v, err := strconv.ParseFloat(s, 64)
+	// The conversion does not allocate for numbers of up to 32 bytes.
+	v, err := strconv.ParseFloat(string(s), 64)
 	if err != nil {
 		// A value beyond ±1.8e308 parses to ±Inf with ErrRange: it is
 		// reported as not finite, like the text "Inf".
@@ -400,9 +459,9 @@ func (p *csvParser) parseValue(s string) (float64, bool) {
 	return v, true
 }
 
-func (p *csvParser) parseTime(s string, line int) (time.Time, error) {
+func (p *csvParser) parseTime(s []byte, line int) (time.Time, error) {
 	tname := p.cols[p.timeIdx].name
-	if s == "" {
+	if len(s) == 0 {
 		return time.Time{}, errorf(p.name, line, tname, "no time")
 	}
 	if p.format == TimeAuto {
@@ -451,7 +510,7 @@ func (p *csvParser) parseTime(s string, line int) (time.Time, error) {
 }
 
 // local resolves a zone-less date-time in the given location.
-func (p *csvParser) local(w *wallTime, s string, line int) (time.Time, error) {
+func (p *csvParser) local(w *wallTime, s []byte, line int) (time.Time, error) {
 	n := p.zr.resolve(&p.resolvBuf, w.seconds())
 	switch n {
 	case 0:
@@ -488,7 +547,7 @@ func (p *csvParser) flushAmbiguous() {
 // duplicates reports rows with equal times and keeps, for a signal present
 // in more than one of them, only the value of the last such row.
 func (p *csvParser) duplicates() {
-	s := p.rec.Samples
+	s := p.samples
 	out := s[:0]
 	lastA, lastB := -1, -1
 	for i := 0; i < len(s); {
@@ -497,6 +556,15 @@ func (p *csvParser) duplicates() {
 			j++
 		}
 		group := s[i:j]
+		if group[0].Line == group[len(group)-1].Line {
+			if len(out) < i {
+				out = append(out, group...)
+			} else {
+				out = s[:j]
+			}
+			i = j
+			continue
+		}
 		for k := 1; k < len(group); k++ {
 			a, b := group[k-1].Line, group[k].Line
 			if a != b && (a != lastA || b != lastB) {
@@ -505,22 +573,22 @@ func (p *csvParser) duplicates() {
 				lastA, lastB = a, b
 			}
 		}
-		for k, smp := range group {
+		for k, c := range group {
 			replaced := 0
 			for _, o := range group[k+1:] {
-				if o.Signal == smp.Signal {
+				if o.Signal == c.Signal {
 					replaced = o.Line
 					break
 				}
 			}
 			if replaced == 0 {
-				out = append(out, smp)
+				out = append(out, c)
 				continue
 			}
-			p.issue(smp.Line, smp.Signal, fmt.Sprintf("value %g replaced by the one on line %d, at the same time", smp.Value, replaced))
+			p.issue(c.Line, c.Signal, fmt.Sprintf("value %g replaced by the one on line %d, at the same time", c.Value, replaced))
 		}
 		i = j
 	}
 	clear(s[len(out):])
-	p.rec.Samples = out
+	p.samples = out
 }

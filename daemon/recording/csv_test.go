@@ -253,6 +253,19 @@ func TestReadCSV(t *testing.T) {
 			},
 		},
 		{
+			name: "quoted fields, one across two lines",
+			in: "\"time\",\"T 1\"\n" +
+				"2024-05-06T00:00:01Z,\"1\"\n" +
+				"2024-05-06T00:00:02Z,\"bad\nvalue\"\n" +
+				"2024-05-06T00:00:03Z,3\n",
+			want: []smp{
+				{"T 1", 1, utc(2024, 5, 6, 0, 0, 1, 0), 2},
+				{"T 1", 3, utc(2024, 5, 6, 0, 0, 3, 0), 5},
+			},
+			format: TimeDateTime,
+			issues: []Issue{{Line: 3, Column: "T 1", Msg: "is not a number"}},
+		},
+		{
 			name: "a named time column that is not first, CRLF, blank rows",
 			in: "a,stamp\r\n" +
 				"1,2024-05-06T00:00:01Z\r\n" +

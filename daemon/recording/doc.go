@@ -79,7 +79,11 @@
 //
 // # Performance
 //
-// ReadCSV makes one allocation per row (encoding/csv's record string) plus
-// the growth of the one Sample slice; ReadJSONL copies payloads into 64 KiB
-// blocks and interns subjects. Times are parsed by hand, without time.Parse.
+// ReadCSV splits a line without quotes in place and parses times and
+// numbers by hand, without allocating; only a record with quotes goes
+// through encoding/csv. The one Sample slice is reserved after the first
+// rows, from the size of the input when the reader can tell it
+// (bytes.Reader, strings.Reader, os.File), so a large file is not copied at
+// every doubling. ReadJSONL copies payloads into 64 KiB blocks and interns
+// subjects.
 package recording

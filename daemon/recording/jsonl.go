@@ -96,7 +96,7 @@ func ReadJSONL(r io.Reader, name string) (*BusRecording, error) {
 		recv, ok := d.recvTime()
 		if !ok {
 			return nil, &Error{Name: name, Line: line, Column: "recv",
-				Msg: fmt.Sprintf("%q is not an RFC 3339 time with a zone", d.recv)}
+				Msg: fmt.Sprintf("%q is not an RFC 3339 time with a zone, in the years 1 to 9999", d.recv)}
 		}
 		subj, ok := subjects[string(d.subject)]
 		if !ok {
@@ -152,6 +152,7 @@ func ReadJSONL(r io.Reader, name string) (*BusRecording, error) {
 // lineDecoder decodes one line of a bus recording into reused buffers.
 type lineDecoder struct {
 	recv, subject, payload []byte
+	key                    []byte
 	base64                 bool
 }
 
@@ -171,14 +172,13 @@ func (d *lineDecoder) decode(b []byte) string {
 		return "want a JSON object"
 	}
 	i = skipSpace(b, i+1)
-	var key []byte
-	var keyBuf [16]byte
 	for first := true; ; first = false {
 		if i < len(b) && b[i] == '}' && first {
 			break
 		}
 		var msg string
-		key, i, msg = appendString(keyBuf[:0], b, i)
+		d.key, i, msg = appendString(d.key[:0], b, i)
+		key := d.key
 		if msg != "" {
 			return "member name: " + msg
 		}
@@ -242,7 +242,11 @@ func (d *lineDecoder) recvTime() (time.Time, bool) {
 	if !ok || !w.hasZone {
 		return time.Time{}, false
 	}
-	return time.Unix(w.seconds()-int64(w.offset), int64(w.nsec)).UTC(), true
+	t := time.Unix(w.seconds()-int64(w.offset), int64(w.nsec)).UTC()
+	if y := t.Year(); y < 1 || y > 9999 {
+		return time.Time{}, false // RFC 3339 cannot write it in UTC
+	}
+	return t, true
 }
 
 func skipSpace(b []byte, i int) int {
@@ -372,6 +376,9 @@ var errClosed = errors.New("recording: write after Close")
 func (w *Writer) Write(recv time.Time, subject string, payload []byte) error {
 	if !utf8.ValidString(subject) {
 		return fmt.Errorf("recording: subject %q is not valid UTF-8", subject)
+	}
+	if y := recv.UTC().Year(); y < 1 || y > 9999 {
+		return fmt.Errorf("recording: receive time %v is outside the years 1 to 9999", recv)
 	}
 	w.mu.Lock()
 	defer w.mu.Unlock()

@@ -196,16 +196,21 @@ func (z *zoneResolver) resolve(dst *[2]int64, wall int64) int {
 // "-3,5" with decimalComma). Numbers with an exponent go through
 // strconv.ParseFloat. It refuses NaN, infinities and magnitudes beyond
 // about ±290 years of nanoseconds from the origin of the count.
-func parseSeconds(s string, decimalComma bool) (sec, nsec int64, ok bool) {
+func parseSeconds[T string | []byte](s T, decimalComma bool) (sec, nsec int64, ok bool) {
 	sep := byte('.')
 	if decimalComma {
 		sep = ','
 	}
-	if strings.ContainsAny(s, "eE") {
+	exp := false
+	for i := 0; i < len(s); i++ {
+		exp = exp || s[i] == 'e' || s[i] == 'E'
+	}
+	if exp {
+		str := string(s)
 		if decimalComma {
-			s = strings.Replace(s, ",", ".", 1)
+			str = strings.Replace(str, ",", ".", 1)
 		}
-		f, err := strconv.ParseFloat(s, 64)
+		f, err := strconv.ParseFloat(str, 64)
 		if err != nil || math.IsNaN(f) || math.IsInf(f, 0) || math.Abs(f) > maxSeconds {
 			return 0, 0, false
 		}
