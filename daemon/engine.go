@@ -147,6 +147,7 @@ type Engine struct {
 	nextActive atomic.Pointer[estimator.Prepared]
 	nextCand   atomic.Pointer[candidateChange]
 	resetReq   atomic.Bool
+	ops        laneOps // the commissioning path's ordered changes (shadow.go)
 
 	// Owned by the tick goroutine.
 	seq         uint64
@@ -334,6 +335,7 @@ func (e *Engine) Reset() { e.resetReq.Store(true) }
 // applyChanges applies, between ticks, what UseGains, SetCandidate and Reset
 // asked for.
 func (e *Engine) applyChanges() {
+	e.applyOps()
 	if p := e.nextActive.Swap(nil); p != nil {
 		e.active.use(p)
 		e.rebind()
