@@ -124,6 +124,7 @@ func TestRuleTestsCatchMutations(t *testing.T) {
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
+			t.Parallel()
 			if strings.Count(rules, tc.old) != 1 {
 				t.Fatalf("the text to mutate occurs %d times in rules.yml, want once: %q", strings.Count(rules, tc.old), tc.old)
 			}

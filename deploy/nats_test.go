@@ -42,7 +42,7 @@ const placeholderNkey = "UCODZMXZ7LEVWQELFBJNXIXOW22IBN23G4R56MGGVP3ZOKGBJY5D5FV
 
 // placeholderHash is the placeholder bcrypt string of a password user in accounts.conf.
 func placeholderHash(user string) string {
-	return `"$2a$11$REPLACE.WITH.THE.BCRYPT.HASH.OF.THE.` + strings.ToUpper(strings.ReplaceAll(user, "-", "_")) + `.PASSWORD"`
+	return `"$2a$11$REPLACE.WITH.HASH.OF.` + strings.ToUpper(strings.ReplaceAll(user, "-", "_")) + `"`
 }
 
 // Test passwords of the users that log in with one; never used outside these tests.
