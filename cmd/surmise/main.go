@@ -33,6 +33,7 @@ func verbs() []verb {
 	return []verb{
 		{"check", "report on a plant's model, its observability and its gain sets", runCheck},
 		{"design", "design observer or Kalman gains and write the gains file", runDesign},
+		{"run", "run the estimators of plant files on the NATS bus (the daemon)", runRun},
 		{"version", "print the version and build information", runVersion},
 	}
 }

@@ -1,0 +1,175 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"io/fs"
+	"log/slog"
+	"strings"
+	"time"
+
+	"surmise/config"
+	"surmise/daemon"
+)
+
+const runSynopsis = `[flags] PLANT.yaml [PLANT.yaml …]
+
+Runs one estimator per plant file on the NATS bus: samples arrive on the
+subjects the plant file wires, one estimate per sample period leaves on
+"<publish>.estimate" (by default surmise.<name>.estimate). Each plant's gains
+file must exist and match its model: write it with 'surmise design'.
+
+Without --nats the daemon starts its own NATS server in-process, listening on
+127.0.0.1 (port --nats-port) so that other programs on this machine can
+publish samples and read estimates. With --nats it connects to the servers
+given, and reconnects by itself when they go away; estimates are not
+published while disconnected (the estimator keeps ticking, coasting).
+
+HTTP (--listen): /metrics (Prometheus), /healthz (the tick loop advances),
+/readyz (bus connected, gains valid, first tick done).
+
+SIGINT or SIGTERM stops it after the tick in progress.`
+
+// runFlags are the flags of `surmise run`. The names are fixed: the systemd
+// unit and the Kubernetes manifests under deploy/ use them.
+type runFlags struct {
+	nats                 string
+	natsPort             int
+	creds, nkey          string
+	tlsCA, tlsCert, tlsK string
+	listen               string
+	logFormat, logLevel  string
+	stateDir             string
+}
+
+func runRun(ctx context.Context, e *env, args []string) error {
+	flags := newFlags(e, "run", runSynopsis)
+	var f runFlags
+	flags.StringVar(&f.nats, "nats", "", "NATS server `URL`s, comma-separated (default: start an embedded server)")
+	flags.IntVar(&f.natsPort, "nats-port", daemon.DefaultEmbeddedPort, "loopback `port` of the embedded server; the default falls back to a random free port when taken, -1 always picks one")
+	flags.StringVar(&f.creds, "creds", "", "NATS user credentials `FILE` (JWT and seed)")
+	flags.StringVar(&f.nkey, "nkey", "", "NATS user NKey seed `FILE`")
+	flags.StringVar(&f.tlsCA, "tls-ca", "", "PEM `FILE` of the CAs that sign the NATS server's certificate")
+	flags.StringVar(&f.tlsCert, "tls-cert", "", "PEM client certificate `FILE` for NATS")
+	flags.StringVar(&f.tlsK, "tls-key", "", "PEM client key `FILE` for NATS")
+	flags.StringVar(&f.listen, "listen", daemon.DefaultHTTPAddr, "HTTP `address` for /metrics, /healthz and /readyz")
+	flags.StringVar(&f.logFormat, "log-format", "text", "log `format`: text or json (on standard error)")
+	flags.StringVar(&f.logLevel, "log-level", "info", "log `level`: debug, info, warn or error")
+	flags.StringVar(&f.stateDir, "state-dir", "", "`directory` for the embedded server's JetStream store (default: a temporary one, removed at exit)")
+	pos, err := parseArgs(flags, args)
+	if err != nil {
+		return err
+	}
+	if len(pos) == 0 {
+		return usageError("want at least one plant file")
+	}
+	explicit := map[string]bool{}
+	flags.Visit(func(fl *flag.Flag) { explicit[fl.Name] = true })
+	log, err := newLogger(e.stderr, f.logFormat, f.logLevel)
+	if err != nil {
+		return err
+	}
+	if f.nats != "" && explicit["nats-port"] {
+		return usageError("--nats-port is the embedded server's port; it cannot be combined with --nats")
+	}
+	if f.nats == "" && (f.creds != "" || f.nkey != "" || f.tlsCA != "" || f.tlsCert != "" || f.tlsK != "") {
+		return usageError("--creds, --nkey and the --tls-* flags are for a server given with --nats")
+	}
+
+	plants, err := loadPlants(e.stderr, pos)
+	if err != nil {
+		return err
+	}
+
+	port := f.natsPort
+	if !explicit["nats-port"] {
+		port = 0 // the default port if free, else a random one
+	}
+	d, err := daemon.New(daemon.Options{
+		Plants: plants,
+		Bus: daemon.BusOptions{
+			URL:       f.nats,
+			CredsFile: f.creds,
+			NKeyFile:  f.nkey,
+			TLSCA:     f.tlsCA,
+			TLSCert:   f.tlsCert,
+			TLSKey:    f.tlsK,
+		},
+		EmbeddedPort: port,
+		Listen:       f.listen,
+		Logger:       log,
+		StateDir:     f.stateDir,
+		Started: func(ep daemon.Endpoints) {
+			where := "connecting to " + ep.BusURL
+			if ep.Embedded {
+				where = ep.BusURL + " (embedded server"
+				if !explicit["nats-port"] && !strings.HasSuffix(ep.BusURL, fmt.Sprintf(":%d", daemon.DefaultEmbeddedPort)) {
+					where += fmt.Sprintf("; port %d was taken, so a free one was picked", daemon.DefaultEmbeddedPort)
+				}
+				where += ")"
+			}
+			fmt.Fprintf(e.stdout, "bus:  %s\n", where)
+			fmt.Fprintf(e.stdout, "http: http://%s/metrics /healthz /readyz\n", ep.HTTPAddr)
+			for _, p := range plants {
+				fmt.Fprintf(e.stdout, "estimator %s: every %v, gains %q, estimates on %s\n",
+					p.Plant.Name, time.Duration(p.Plant.Model.Ts*float64(time.Second)), p.Gains.Active, daemon.EstimateSubject(p.Plant))
+			}
+		},
+	})
+	if err != nil {
+		return err
+	}
+	return d.Run(ctx)
+}
+
+// loadPlants reads every plant file and its gains file. A file that is
+// refused is reported on stderr with its positions; the error returned then
+// only says which file.
+func loadPlants(stderr io.Writer, paths []string) ([]daemon.PlantSpec, error) {
+	var specs []daemon.PlantSpec
+	var bad []string
+	for _, path := range paths {
+		plant, err := config.LoadPlant(path)
+		if err != nil {
+			fmt.Fprintln(stderr, err)
+			bad = append(bad, path)
+			continue
+		}
+		gains, err := config.LoadGains(plant.GainsPath, plant)
+		switch {
+		case errors.Is(err, fs.ErrNotExist):
+			fmt.Fprintf(stderr, "%s: the gains file %s does not exist; write it with: surmise design %s\n", path, plant.GainsPath, path)
+			bad = append(bad, path)
+			continue
+		case err != nil:
+			fmt.Fprintln(stderr, err)
+			fmt.Fprintf(stderr, "%s: the gains file %s is refused (above); fix it, or write a new one with: surmise design %s\n", path, plant.GainsPath, path)
+			bad = append(bad, path)
+			continue
+		}
+		specs = append(specs, daemon.PlantSpec{Plant: plant, Gains: gains})
+	}
+	if len(bad) > 0 {
+		return nil, &exitError{code: 1, msg: "not started: " + strings.Join(bad, ", ") + " refused"}
+	}
+	return specs, nil
+}
+
+// newLogger returns the daemon's logger on w.
+func newLogger(w io.Writer, format, level string) (*slog.Logger, error) {
+	var lv slog.Level
+	if err := lv.UnmarshalText([]byte(level)); err != nil {
+		return nil, usageError("--log-level %q: want debug, info, warn or error", level)
+	}
+	opts := &slog.HandlerOptions{Level: lv}
+	switch format {
+	case "text":
+		return slog.New(slog.NewTextHandler(w, opts)), nil
+	case "json":
+		return slog.New(slog.NewJSONHandler(w, opts)), nil
+	}
+	return nil, usageError("--log-format %q: want text or json", format)
+}
