@@ -84,6 +84,15 @@ func scaleWires(ws []config.Wire, scale float64) []config.Wire {
 	return out
 }
 
+// longMaxAge returns ws with a max_age of a minute.
+func longMaxAge(ws []config.Wire) []config.Wire {
+	out := append([]config.Wire(nil), ws...)
+	for i := range out {
+		out[i].MaxAge = time.Minute
+	}
+	return out
+}
+
 // testLogger logs to the test's output.
 func testLogger(t testing.TB) *slog.Logger {
 	return slog.New(slog.NewTextHandler(t.Output(), &slog.HandlerOptions{Level: slog.LevelDebug}))
