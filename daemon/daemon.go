@@ -96,6 +96,17 @@ type Options struct {
 	// for none; negative means never.
 	WatchdogInterval time.Duration
 
+	// MinDwell is the shortest time between two swaps of the active gain
+	// set by promote or roll-back (control service); zero means
+	// DefaultMinDwell, negative none.
+	MinDwell time.Duration
+
+	// ReloadDebounce is how long the watcher of the plant and gains files'
+	// directories waits for quiet before it reads them again; zero means
+	// DefaultDebounce, negative turns the watcher off (SIGHUP, Reload and
+	// the control service still reload).
+	ReloadDebounce time.Duration
+
 	// Started, when not nil, is called once by Run when the daemon has
 	// started — server up, listeners bound, subscriptions made, ticks
 	// scheduled — with the addresses it uses.
@@ -206,6 +217,8 @@ type Daemon struct {
 
 	ran atomic.Bool
 
+	comm *commissioning // reloads, audit, control service (reload.go)
+
 	// Set by Run.
 	ns          *server.Server // the embedded server, when it is ours
 	tempState   string         // a temporary state directory to remove
@@ -260,6 +273,9 @@ func New(opts Options) (*Daemon, error) {
 	for i, p := range opts.Plants {
 		d.estimators = append(d.estimators, newEstimator(d, p, prepared[i]))
 		longest = max(longest, periodOf(p.Plant))
+	}
+	if err := d.newCommissioning(); err != nil {
+		return nil, err
 	}
 	d.http, err = NewHTTPServer(HTTPOptions{
 		Addr:     opts.Listen,
@@ -378,6 +394,9 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 			return ep, err
 		}
 	}
+	if err := d.startCommissioning(g, bus.Conn()); err != nil {
+		return ep, err
+	}
 
 	if err := d.http.Listen(); err != nil {
 		return ep, err
@@ -417,6 +436,7 @@ func (d *Daemon) shutdown(g *Group) error {
 		d.schedCancel()
 		<-d.schedDone
 	}
+	d.stopCommissioning()
 	if d.bus != nil {
 		if err := d.bus.Close(drainTimeout); err != nil {
 			errs = append(errs, err)

@@ -41,6 +41,9 @@ type Estimator struct {
 	est       *Estimate
 	payload   []byte
 	lastReady int8 // the ready gauge as last set: -1 never, 0, 1
+
+	comm   *Commissioner // reloads, shadow, promotion (reload.go)
+	shadow shadowLane    // the candidate's estimate, tick only (shadow.go)
 }
 
 // signal is one wired signal of an estimator.
@@ -176,6 +179,7 @@ func (e *Estimator) tick(t Tick) {
 			e.observeLatency(time.Now())
 		}
 	}
+	e.afterTick(connected)
 	e.metrics.ObserveTick(e.est.Status, t.Lateness, time.Since(t.Start), t.Missed)
 	e.lastTick.Store(d.now())
 	ready := connected && e.gainsOK.Load()

@@ -134,3 +134,29 @@ func (e *Engine) applyOp(op *laneOp) {
 		}
 	}
 }
+
+// shadowLane is the tick side of an estimator's candidate lane: its
+// estimate and its JSON, reused from tick to tick.
+type shadowLane struct {
+	subject string
+	est     *Estimate
+	payload []byte
+}
+
+// afterTick publishes the candidate lane's estimate of the tick just run on
+// the shadow subject (when there is a candidate and the bus is connected)
+// and shows both lanes to the commissioner. It runs on the tick goroutine
+// after the active estimate was published, and allocates nothing.
+func (e *Estimator) afterTick(connected bool) {
+	var cand *Estimate
+	if e.shadow.est != nil && e.engine.CandidateTo(e.shadow.est) {
+		cand = e.shadow.est
+		if connected {
+			e.shadow.payload = cand.AppendJSON(e.shadow.payload[:0])
+			_ = e.d.bus.Conn().Publish(e.shadow.subject, e.shadow.payload)
+		}
+	}
+	if e.comm != nil {
+		e.comm.observe(e.est, cand)
+	}
+}
