@@ -8,7 +8,10 @@ import (
 	"io"
 	"io/fs"
 	"log/slog"
+	"os"
+	"os/signal"
 	"strings"
+	"syscall"
 	"time"
 
 	"surmise/config"
@@ -30,6 +33,12 @@ published while disconnected (the estimator keeps ticking, coasting).
 
 HTTP (--listen): /metrics (Prometheus), /healthz (the tick loop advances),
 /readyz (bus connected, gains valid, first tick done).
+
+Gains change without a restart: SIGHUP, or a change of a plant's gains file
+(its directory is watched), reloads them; a candidate set named in the gains
+file runs in shadow on "<publish>.shadow.estimate"; 'surmise ctl' promotes it,
+rolls back, loads gains and resets the state over the bus. A changed plant
+file is refused until a restart.
 
 SIGINT or SIGTERM stops it after the tick in progress.`
 
@@ -122,6 +131,28 @@ func runRun(ctx context.Context, e *env, args []string) error {
 	if err != nil {
 		return err
 	}
+	return runWithReload(ctx, d)
+}
+
+// runWithReload runs d with SIGHUP wired to a reload of every estimator's
+// plant and gains files (daemon.Reload). The signal is caught before the
+// daemon starts, so that an early SIGHUP does not end the process.
+func runWithReload(ctx context.Context, d *daemon.Daemon) error {
+	hup := make(chan os.Signal, 1)
+	signal.Notify(hup, syscall.SIGHUP)
+	defer signal.Stop(hup)
+	ctx, cancel := context.WithCancel(ctx)
+	defer cancel()
+	go func() {
+		for {
+			select {
+			case <-ctx.Done():
+				return
+			case <-hup:
+				d.Reload(daemon.TriggerSignal)
+			}
+		}
+	}()
 	return d.Run(ctx)
 }
 
