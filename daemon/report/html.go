@@ -1,0 +1,432 @@
+package report
+
+import (
+	"fmt"
+	"html/template"
+	"image/color"
+	"io"
+	"math"
+	"strconv"
+	"strings"
+	"time"
+
+	"gonum.org/v1/plot"
+	"gonum.org/v1/plot/plotter"
+	"gonum.org/v1/plot/vg"
+)
+
+// nisFloor is the smallest NIS drawn on the NIS plot's log scale; smaller
+// values (a NIS can be 0) are drawn at it.
+const nisFloor = 1e-3
+
+// WriteHTML writes the replay report of in to w as one self-contained HTML
+// page: a header, the summary table with the gain sets side by side, and
+// inline SVG plots of the innovations, the NIS and the states. The page
+// loads nothing from anywhere: no scripts, fonts or style sheets.
+func WriteHTML(w io.Writer, in *Input) error {
+	if err := in.Validate(); err != nil {
+		return err
+	}
+	pg, err := buildPage(in)
+	if err != nil {
+		return err
+	}
+	t, err := template.New("report").Parse(pageTemplate)
+	if err != nil {
+		return fmt.Errorf("report: the page template: %w", err)
+	}
+	if err := t.Execute(w, pg); err != nil {
+		return fmt.Errorf("report: writing the page: %w", err)
+	}
+	return nil
+}
+
+type page struct {
+	Plant, Source string
+	Start, End    string
+	Duration      string
+	Ticks         string
+	Runs          []runView
+	Sections      []tableSection
+	Innovations   []plotView
+	NIS           plotView
+	States        []plotView
+	HasTruth      bool
+	HasStateStd   bool
+	Buckets       int
+	Colspan       int
+	MaxOutside    int
+	Lags          int
+}
+
+type runView struct {
+	Gains, Form, Fingerprint string
+	Color                    string
+}
+
+type tableSection struct {
+	Title string
+	Rows  []tableRow
+}
+
+type tableRow struct {
+	Label, Expected string
+	Cells           []tableCell
+	Small           bool
+}
+
+type tableCell struct {
+	Text string
+	Warn bool
+}
+
+type plotView struct {
+	Title string
+	SVG   template.HTML
+}
+
+func cssColor(c color.NRGBA) string { return fmt.Sprintf("#%02x%02x%02x", c.R, c.G, c.B) }
+
+func num(v float64) string {
+	if math.IsNaN(v) {
+		return "—"
+	}
+	return strings.Replace(strconv.FormatFloat(v, 'g', 4, 64), "-", "−", 1)
+}
+
+func pct(v float64) string {
+	if math.IsNaN(v) {
+		return "—"
+	}
+	return fmt.Sprintf("%.1f %%", 100*v)
+}
+
+func count(n, of int) string {
+	if of == 0 {
+		return strconv.Itoa(n)
+	}
+	return fmt.Sprintf("%d (%.1f %%)", n, 100*float64(n)/float64(of))
+}
+
+func withUnit(name, unit string) string {
+	if unit == "" {
+		return name
+	}
+	return name + " (" + unit + ")"
+}
+
+func unitOf(units []string, i int) string {
+	if units == nil {
+		return ""
+	}
+	return units[i]
+}
+
+func buildPage(in *Input) (*page, error) {
+	sums := Summarise(in)
+	t0, t1 := sums[0].Start, sums[0].End
+	total := 0
+	for _, s := range sums {
+		if s.Start.Before(t0) {
+			t0 = s.Start
+		}
+		if s.End.After(t1) {
+			t1 = s.End
+		}
+		total = max(total, s.Ticks)
+	}
+	pg := &page{
+		Plant: in.Plant, Source: in.Source,
+		Start:      t0.Format("2006-01-02 15:04:05.000 MST"),
+		End:        t1.Format("2006-01-02 15:04:05.000 MST"),
+		Duration:   t1.Sub(t0).Round(time.Millisecond).String(),
+		Ticks:      strconv.Itoa(total),
+		HasTruth:   in.Truth != nil,
+		Buckets:    Buckets,
+		Colspan:    len(in.Runs) + 2,
+		MaxOutside: MaxOutside,
+		Lags:       Lags,
+	}
+	for i, r := range in.Runs {
+		fp := r.Fingerprint
+		if len(fp) > 16 {
+			fp = fp[:16] + "…"
+		}
+		pg.Runs = append(pg.Runs, runView{Gains: r.Gains, Form: r.Form, Fingerprint: fp, Color: cssColor(palette(i))})
+		if r.Ticks.StateStd != nil {
+			pg.HasStateStd = true
+		}
+	}
+	pg.Sections = tableSections(in, sums)
+	if err := addPlots(pg, in); err != nil {
+		return nil, err
+	}
+	return pg, nil
+}
+
+func tableSections(in *Input, sums []Summary) []tableSection {
+	row := func(label, expected string, f func(s *Summary) tableCell) tableRow {
+		r := tableRow{Label: label, Expected: expected}
+		for i := range sums {
+			r.Cells = append(r.Cells, f(&sums[i]))
+		}
+		return r
+	}
+	plain := func(f func(s *Summary) string) func(s *Summary) tableCell {
+		return func(s *Summary) tableCell { return tableCell{Text: f(s)} }
+	}
+	ticks := tableSection{Title: "Ticks"}
+	ticks.Rows = append(ticks.Rows,
+		row("ticks", "", plain(func(s *Summary) string { return strconv.Itoa(s.Ticks) })),
+		row("tracking", "", plain(func(s *Summary) string { return count(s.Tracking, s.Ticks) })),
+		row("coasting", "", plain(func(s *Summary) string { return count(s.Coasting, s.Ticks) })),
+	)
+	any := func(f func(s *Summary) int) bool {
+		for i := range sums {
+			if f(&sums[i]) > 0 {
+				return true
+			}
+		}
+		return false
+	}
+	if any(func(s *Summary) int { return s.StaleInput }) {
+		ticks.Rows = append(ticks.Rows, row("stale input", "", plain(func(s *Summary) string { return count(s.StaleInput, s.Ticks) })))
+	}
+	if any(func(s *Summary) int { return s.Suspect }) {
+		ticks.Rows = append(ticks.Rows, row("suspect", "", plain(func(s *Summary) string { return count(s.Suspect, s.Ticks) })))
+	}
+	if any(func(s *Summary) int { return s.Other }) {
+		ticks.Rows = append(ticks.Rows, row("other status", "", plain(func(s *Summary) string { return count(s.Other, s.Ticks) })))
+	}
+	ticks.Rows = append(ticks.Rows, row("outliers rejected", "", plain(func(s *Summary) string { return strconv.Itoa(s.Outliers) })))
+
+	nis := tableSection{Title: "Consistency (NIS)"}
+	nis.Rows = append(nis.Rows,
+		row("ticks with a NIS", "", plain(func(s *Summary) string { return strconv.Itoa(s.NISTicks) })),
+		row("mean NIS", "mean dof", plain(func(s *Summary) string {
+			return num(s.MeanNIS) + " (dof " + num(s.MeanDof) + ")"
+		})),
+		row("NIS inside its 95 % band", "95 %", func(s *Summary) tableCell {
+			return tableCell{Text: pct(s.NISInBand), Warn: s.NISInBand < 0.9}
+		}),
+		row("windowed mean inside its band", "95 %", func(s *Summary) tableCell {
+			return tableCell{Text: pct(s.WindowsInBand), Warn: s.WindowsInBand < 0.9}
+		}),
+	)
+	out := []tableSection{ticks, nis}
+	for j, name := range in.OutputNames {
+		unit := unitOf(in.OutputUnits, j)
+		sec := tableSection{Title: "Innovation of " + withUnit(name, unit)}
+		sec.Rows = append(sec.Rows,
+			row("values", "", plain(func(s *Summary) string { return strconv.Itoa(s.Outputs[j].N) })),
+			row("mean", "0", plain(func(s *Summary) string { return num(s.Outputs[j].Mean) })),
+			row("RMS", "", plain(func(s *Summary) string { return num(s.Outputs[j].RMS) })),
+			row(fmt.Sprintf("lags 1–%d outside ±1.96/√N", Lags), fmt.Sprintf("≤ %d", MaxOutside), func(s *Summary) tableCell {
+				o := s.Outputs[j]
+				if o.Autocorr == nil {
+					return tableCell{Text: "—"}
+				}
+				verdict := "white"
+				if !o.White {
+					verdict = "not white"
+				}
+				return tableCell{Text: fmt.Sprintf("%d (%s)", o.Outside, verdict), Warn: !o.White}
+			}),
+		)
+		r := row("ρ(1), …, ρ(10)", "", plain(func(s *Summary) string {
+			o := s.Outputs[j]
+			if o.Autocorr == nil {
+				return "—"
+			}
+			parts := make([]string, len(o.Autocorr))
+			for i, v := range o.Autocorr {
+				parts[i] = strconv.FormatFloat(v, 'f', 3, 64)
+			}
+			return strings.ReplaceAll(strings.Join(parts, " "), "-", "−") + "  (±" + strconv.FormatFloat(o.Bound, 'f', 3, 64) + ")"
+		}))
+		r.Small = true
+		sec.Rows = append(sec.Rows, r)
+		out = append(out, sec)
+	}
+	return out
+}
+
+func addPlots(pg *page, in *Input) error {
+	ax := newTimeAxis(in)
+	xs := make([][]float64, len(in.Runs))
+	decs := make([]decimator, len(in.Runs))
+	for i := range in.Runs {
+		xs[i] = ax.xs(in.Runs[i].Ticks.Time)
+		decs[i] = newDecimator(xs[i], Buckets)
+	}
+	render := func(f *figure, title string) (plotView, error) {
+		// The same time range on every plot, so they line up.
+		f.p.X.Min, f.p.X.Max = 0, ax.end
+		s, err := f.svg()
+		return plotView{Title: title, SVG: template.HTML(s)}, err
+	}
+
+	for j, name := range in.OutputNames {
+		unit := unitOf(in.OutputUnits, j)
+		title := "Innovation of " + withUnit(name, unit) + ", with ±2√S"
+		f := newFigure(title, ax.label(), withUnit("innovation", unit))
+		for i := range in.Runs {
+			f.lines(decs[i].lines(xs[i], in.Runs[i].Ticks.Innovations[j]), withAlpha(palette(i), 0xa0), 0.5)
+		}
+		// The claimed ±2√S on top, as edges: under a dense cloud of
+		// innovations a filled band would not show.
+		for i := range in.Runs {
+			t := &in.Runs[i].Ticks
+			if t.InnovationStd != nil {
+				f.lines(edges(decs[i].band(xs[i], nil, t.InnovationStd[j], 2)), darker(palette(i)), 1.1)
+			}
+		}
+		v, err := render(f, title)
+		if err != nil {
+			return err
+		}
+		pg.Innovations = append(pg.Innovations, v)
+	}
+
+	{
+		title := "NIS: largest per time bucket, windowed mean and its 95 % band"
+		f := newFigure(title, ax.label(), "NIS (log scale)")
+		f.p.Y.Scale = plot.LogScale{}
+		f.p.Y.Tick.Marker = plot.LogTicks{Prec: -1}
+		clamp := func(segs []plotter.XYs) []plotter.XYs {
+			for _, s := range segs {
+				for k := range s {
+					s[k].Y = math.Max(s[k].Y, nisFloor)
+				}
+			}
+			return segs
+		}
+		for i := range in.Runs {
+			f.lines(clamp(decs[i].upper(xs[i], in.Runs[i].Ticks.NIS)), withAlpha(palette(i), 0x60), 0.5)
+		}
+		for i := range in.Runs {
+			t := &in.Runs[i].Ticks
+			if t.NISMean == nil {
+				continue
+			}
+			f.lines(clamp(decs[i].lines(xs[i], t.BandLo)), palette(i), 0.8, vg.Points(3), vg.Points(2))
+			f.lines(clamp(decs[i].lines(xs[i], t.BandHi)), palette(i), 0.8, vg.Points(3), vg.Points(2))
+			f.lines(clamp(decs[i].lines(xs[i], t.NISMean)), palette(i), 1.4)
+		}
+		switch {
+		case f.points == 0:
+			// No NIS at all (nothing measured): an empty log axis needs a
+			// range of its own.
+			f.p.Y.Min, f.p.Y.Max = 0.1, 10
+		case f.ymin == f.ymax:
+			// One value: gonum would widen the range by ±1, which can
+			// cross zero on a log scale.
+			f.p.Y.Min, f.p.Y.Max = f.ymin/10, f.ymax*10
+		}
+		v, err := render(f, title)
+		if err != nil {
+			return err
+		}
+		pg.NIS = v
+	}
+
+	for s, name := range in.StateNames {
+		unit := unitOf(in.StateUnits, s)
+		title := "State " + withUnit(name, unit)
+		if pg.HasStateStd {
+			title += ", with ±2σ"
+		}
+		f := newFigure(title, ax.label(), withUnit(name, unit))
+		for i := range in.Runs {
+			t := &in.Runs[i].Ticks
+			if t.StateStd != nil {
+				f.bands(decs[i].band(xs[i], t.States[s], t.StateStd[s], 2), withAlpha(palette(i), 0x30))
+			}
+		}
+		for i := range in.Runs {
+			f.lines(decs[i].lines(xs[i], in.Runs[i].Ticks.States[s]), palette(i), 0.8)
+		}
+		if in.Truth != nil {
+			f.lines(decs[0].lines(xs[0], in.Truth[s]), color.Gray{0x20}, 0.8, vg.Points(4), vg.Points(2))
+		}
+		v, err := render(f, title)
+		if err != nil {
+			return err
+		}
+		pg.States = append(pg.States, v)
+	}
+	return nil
+}
+
+const pageTemplate = `<!DOCTYPE html>
+<html lang="en">
+<head>
+<meta charset="utf-8">
+<meta name="viewport" content="width=device-width, initial-scale=1">
+<title>Replay report — {{.Plant}}</title>
+<style>
+:root { --ink: #1d2329; --muted: #5b6670; --rule: #d8dde2; --warn: #b3261e; --warnbg: #fcebea; }
+* { box-sizing: border-box; }
+body { margin: 0; padding: 24px 32px 48px; color: var(--ink); background: #fff;
+  font: 14px/1.45 "Liberation Sans", Arial, Helvetica, sans-serif; }
+main { max-width: 1100px; margin: 0 auto; }
+h1 { font-size: 22px; margin: 0 0 4px; font-weight: 600; }
+h2 { font-size: 17px; margin: 32px 0 8px; padding-bottom: 4px; border-bottom: 1px solid var(--rule); font-weight: 600; }
+h3 { font-size: 14px; margin: 18px 0 4px; font-weight: 600; }
+.meta { color: var(--muted); margin: 0 0 12px; }
+.meta b { color: var(--ink); font-weight: 600; }
+.runs { display: flex; flex-wrap: wrap; gap: 8px 24px; margin: 8px 0 0; padding: 0; list-style: none; }
+.chip { display: inline-block; width: 22px; height: 4px; border-radius: 2px; vertical-align: middle; margin-right: 6px; }
+.runs .fp { color: var(--muted); font-family: "Liberation Mono", Menlo, Consolas, monospace; font-size: 12px; }
+table { border-collapse: collapse; width: 100%; margin: 4px 0 0; font-variant-numeric: tabular-nums; }
+th, td { padding: 4px 10px; text-align: left; border-bottom: 1px solid #eef0f2; vertical-align: top; }
+thead th { border-bottom: 2px solid var(--rule); font-weight: 600; }
+tbody th { font-weight: 600; background: #f6f7f8; color: var(--ink); }
+td.label { color: var(--ink); width: 28%; }
+td.exp { color: var(--muted); width: 12%; }
+td.small { font-size: 12px; color: var(--muted); font-family: "Liberation Mono", Menlo, Consolas, monospace; }
+td.warn { color: var(--warn); background: var(--warnbg); font-weight: 600; }
+figure { margin: 8px 0 18px; }
+figure svg { display: block; width: 100%; height: auto; }
+.legend { display: flex; flex-wrap: wrap; gap: 4px 20px; color: var(--muted); font-size: 13px; margin: 4px 0 0; }
+.swatch { display: inline-block; width: 22px; height: 10px; vertical-align: middle; margin-right: 6px; }
+.note { color: var(--muted); font-size: 12px; }
+</style>
+</head>
+<body>
+<main>
+<header>
+<h1>Replay report — {{.Plant}}</h1>
+<p class="meta">Recording <b>{{.Source}}</b> · {{.Start}} to {{.End}} ({{.Duration}}) · {{.Ticks}} ticks</p>
+<ul class="runs">
+{{range .Runs}}<li><span class="chip" style="background:{{.Color}}"></span><b>{{.Gains}}</b> · {{.Form}} <span class="fp">{{.Fingerprint}}</span></li>
+{{end}}</ul>
+</header>
+
+<h2>Summary</h2>
+<table>
+<thead><tr><th></th><th>expected</th>{{range .Runs}}<th><span class="chip" style="background:{{.Color}}"></span>{{.Gains}}</th>{{end}}</tr></thead>
+{{range .Sections}}<tbody>
+<tr><th colspan="{{$.Colspan}}">{{.Title}}</th></tr>
+{{range .Rows}}<tr><td class="label">{{.Label}}</td><td class="exp">{{.Expected}}</td>{{$small := .Small}}{{range .Cells}}<td class="{{if .Warn}}warn{{else if $small}}small{{end}}">{{.Text}}</td>{{end}}</tr>
+{{end}}</tbody>
+{{end}}</table>
+<p class="note">Expected values are those of a consistent filter: a NIS inside its two-sided 95 % chi-square band on 95 % of ticks, a mean NIS equal to the mean number of outputs (dof), white innovations (at most {{.MaxOutside}} of {{.Lags}} autocorrelation lags outside ±1.96/√N). Highlighted cells fall short of that.</p>
+
+<h2>Innovations</h2>
+<div class="legend">{{range .Runs}}<span><span class="chip" style="background:{{.Color}}"></span>{{.Gains}}</span>{{end}}<span><span class="chip" style="background:#445"></span>±2√S claimed by each gain set (darker line)</span></div>
+{{range .Innovations}}<figure>{{.SVG}}</figure>
+{{end}}
+<h2>NIS</h2>
+<div class="legend">{{range .Runs}}<span><span class="chip" style="background:{{.Color}}"></span>{{.Gains}}: thin, the largest NIS of each time bucket; thick, the windowed mean; dashed, its 95 % band</span>{{end}}</div>
+<figure>{{.NIS.SVG}}</figure>
+
+<h2>States</h2>
+<div class="legend">{{range .Runs}}<span><span class="chip" style="background:{{.Color}}"></span>{{.Gains}}</span>{{end}}{{if .HasStateStd}}<span><span class="swatch" style="background:#9aa5b1;opacity:.35"></span>±2σ</span>{{end}}{{if .HasTruth}}<span><span class="chip" style="background:repeating-linear-gradient(90deg,#333 0 6px,transparent 6px 9px)"></span>true state (simulation)</span>{{end}}</div>
+{{range .States}}<figure>{{.SVG}}</figure>
+{{end}}
+<p class="note">Long series are drawn as the minimum and maximum of each of {{.Buckets}} time buckets, so single-tick spikes remain visible. Times are those of the recording.</p>
+</main>
+</body>
+</html>
+`
