@@ -328,18 +328,20 @@ type Filter struct {
 	n, m, p int
 
 	x     []float64 // the published estimate, deviation
-	xm    []float64 // x̂(k|k−1), deviation
+	xm    []float64 // scratch for the prediction, swapped with x
 	pend  []float64 // prediction form: L·r of the last tick, added in the next prediction
 	hasP  bool      // pend holds a correction
 	uPrev []float64 // u(k−1) − U0
 	du    []float64 // u(k) − U0
 	first bool      // the next Step does not predict
 
-	yhat []float64 // C·x̂(k|k−1) + D·(u(k) − U0)
-	r    []float64 // innovation per output; valid for the outputs in used
-	sv   []float64 // S_ii per output; valid for the outputs in used when svOK
-	used Pattern
-	svOK bool
+	yhat   []float64 // C·x̂(k|k−1) + D·(u(k) − U0)
+	r      []float64 // innovation per output; valid for the outputs in used
+	sv     []float64 // S_ii per output; valid for the outputs in used when svOK
+	used   Pattern
+	svOK   bool          // Kalman: sv holds S_ii for the outputs in used
+	svGain *compiledGain // fixed gains: the gain whose S was used, or nil
+	full   Pattern       // all p outputs
 
 	// scratch, sized for all p outputs
 	idx  []int
@@ -351,11 +353,12 @@ type Filter struct {
 	// Kalman
 	P, Pn []float64 // n×n: the covariance, and scratch
 	p0    []float64 // the initial covariance; nil when none was given or derived
-	cp    []float64 // p×n: C_s·P⁻ for the present outputs
+	cs    []float64 // p×n: the rows of C for the present outputs
+	cp    []float64 // p×n: C_s·P⁻
 	kt    []float64 // p×n: Kᵀ for the outputs used
 	sfull []float64 // p×p: C_s·P⁻·C_sᵀ + R_s for the present outputs
-	h     []float64 // n×p: K·R_s − M·C_sᵀ
-	kr    []float64 // p: a row of K·R_s
+	rr    []float64 // p×p: R for the outputs used
+	h     []float64 // p: a row of K·R_s − M·C_sᵀ
 }
 
 // NewFilter returns a filter for the prepared gain set pr starting at the
@@ -377,8 +380,9 @@ func NewFilter(pr *Prepared, x0 []float64, p0 mat.Symmetric) *Filter {
 		idx: make([]int, p), act: make([]int, p),
 		rs: make([]float64, p), z: make([]float64, p), chol: make([]float64, p*p),
 		P: make([]float64, n*n), Pn: make([]float64, n*n),
-		cp: make([]float64, p*n), kt: make([]float64, p*n), sfull: make([]float64, p*p),
-		h: make([]float64, n*p), kr: make([]float64, p),
+		cs: make([]float64, p*n), cp: make([]float64, p*n), kt: make([]float64, p*n),
+		sfull: make([]float64, p*p), rr: make([]float64, p*p), h: make([]float64, p),
+		full: FullPattern(p),
 	}
 	if p0 != nil {
 		f.p0 = make([]float64, n*n)
@@ -419,14 +423,13 @@ func (f *Filter) Reset(x0 []float64, p0 mat.Symmetric) {
 			f.x[i] = x0[i] - f.pr.x0[i]
 		}
 	}
-	copy(f.xm, f.x)
 	clear(f.pend)
 	clear(f.uPrev)
 	clear(f.du)
 	f.hasP = false
 	f.first = true
 	f.used = 0
-	f.svOK = false
+	f.svOK, f.svGain = false, nil
 	flatMulVec(f.yhat, f.pr.c, f.x)
 	switch {
 	case p0 != nil:
@@ -470,7 +473,7 @@ func (f *Filter) Use(pr *Prepared) {
 	if pr.form == Kalman && old != Kalman {
 		pr.defaultP(f.P, f.p0)
 	}
-	f.svOK = false
+	f.svOK, f.svGain = false, nil
 }
 
 // Prepared returns the gain set the filter runs with.
@@ -509,31 +512,28 @@ func (f *Filter) Step(u, y []float64, present Pattern) Outcome {
 		du[j] = u[j] - pr.u0[j]
 	}
 
-	// 1. Predict.
+	// 1. Predict into xm, then swap: x holds x̂(k|k−1) from here on and is
+	// corrected in place.
 	if !f.first {
-		flatMulVec(f.xm, pr.a, f.x)
-		flatMulVecAdd(f.xm, pr.b, f.uPrev)
+		flatMulVec2(f.xm, pr.a, f.x, pr.b, f.uPrev)
 		if f.hasP {
 			flatAdd(f.xm, f.pend)
 		}
+		f.x, f.xm = f.xm, f.x
 		if pr.form == Kalman {
 			f.predictCov()
 		}
-	} else {
-		copy(f.xm, f.x)
 	}
 	f.first = false
 	f.hasP = false
-	copy(f.x, f.xm)
 
 	// 2. Innovation of the present, finite outputs.
-	flatMulVec(f.yhat, pr.c, f.xm)
-	flatMulVecAdd(f.yhat, pr.d, du)
-	pat := present & FullPattern(f.p)
+	flatMulVec2(f.yhat, pr.c, f.x, pr.d, du)
+	pat := present & f.full
 	for s := pat; s != 0; s &= s - 1 {
 		i := bits.TrailingZeros64(uint64(s))
 		v := y[i]
-		if math.IsNaN(v) || math.IsInf(v, 0) {
+		if v-v != 0 { // NaN or ±Inf
 			pat &^= 1 << uint(i)
 			continue
 		}
@@ -542,21 +542,20 @@ func (f *Filter) Step(u, y []float64, present Pattern) Outcome {
 
 	// 3 and 4.
 	var out Outcome
-	f.svOK = false
+	f.svOK, f.svGain = false, nil
 	if pr.form == Kalman {
-		out = f.correctKalman(pat)
+		f.correctKalman(pat, &out)
 	} else {
-		out = f.correctFixed(pat)
+		f.correctFixed(pat, &out)
 	}
 	f.used = out.Used
-	copy(f.uPrev, du)
+	f.uPrev, f.du = f.du, f.uPrev
 	return out
 }
 
 // correctFixed gates and corrects with the fixed gains.
-func (f *Filter) correctFixed(pat Pattern) Outcome {
+func (f *Filter) correctFixed(pat Pattern, out *Outcome) {
 	pr := f.pr
-	var out Outcome
 	for pat != 0 {
 		g := pr.lookup(pat)
 		if g == nil {
@@ -583,10 +582,7 @@ func (f *Filter) correctFixed(pat Pattern) Outcome {
 				continue
 			}
 			out.HasNIS, out.NIS, out.Dof = true, nis, k
-			for l, i := range g.idx {
-				f.sv[i] = g.sDiag[l]
-			}
-			f.svOK = true
+			f.svGain = g
 		}
 		if pr.form == Current {
 			flatMulVecAdd(f.x, g.l, rs)
@@ -598,28 +594,19 @@ func (f *Filter) correctFixed(pat Pattern) Outcome {
 		break
 	}
 	out.Used = pat
-	return out
 }
 
-// predictCov sets P = A·P·Aᵀ + Q, using Pn for A·P.
+// predictCov sets P = A·P·Aᵀ + Q, using Pn for A·P. As P is symmetric,
+// A·P = A·Pᵀ and both products are of the form X·Yᵀ (rows against rows).
 func (f *Filter) predictCov() {
 	n := f.n
-	a, P, t, q := f.pr.a, f.P, f.Pn, f.pr.q
-	// t = A·P, row by row: t_i = Σ_l A_il·P_l.
+	P, t, q := f.P, f.Pn, f.pr.q
+	flatMulNT(t, f.pr.a, P, n, n, n, false)
+	flatMulNT(P, t, f.pr.a, n, n, n, true)
 	for i := 0; i < n; i++ {
-		ti := t[i*n : i*n+n]
-		clear(ti)
-		for l, v := range a[i*n : i*n+n] {
-			if v != 0 {
-				flatAxpy(ti, v, P[l*n:l*n+n])
-			}
-		}
-	}
-	// P_ij = t_i·A_j + Q_ij for j ≥ i, mirrored.
-	for i := 0; i < n; i++ {
-		ti := t[i*n : i*n+n]
-		for j := i; j < n; j++ {
-			v := flatDot(ti, a[j*n:j*n+n]) + q[i*n+j]
+		P[i*n+i] += q[i*n+i]
+		for j := i + 1; j < n; j++ {
+			v := P[i*n+j] + q[i*n+j]
 			P[i*n+j] = v
 			P[j*n+i] = v
 		}
@@ -627,30 +614,30 @@ func (f *Filter) predictCov() {
 }
 
 // correctKalman gates and corrects with the time-varying Kalman gain.
-func (f *Filter) correctKalman(pat Pattern) Outcome {
+func (f *Filter) correctKalman(pat Pattern, out *Outcome) {
 	pr := f.pr
 	n, p := f.n, f.p
-	var out Outcome
 	k := 0
 	for s := pat; s != 0; s &= s - 1 {
-		f.idx[k] = bits.TrailingZeros64(uint64(s))
+		i := bits.TrailingZeros64(uint64(s))
+		f.idx[k] = i
+		copy(f.cs[k*n:k*n+n], pr.c[i*n:i*n+n])
 		k++
 	}
 	if k == 0 {
-		return out
+		return
 	}
 	idx := f.idx[:k]
-	// C_s·P⁻ (P symmetric: row l is P·C_iᵀ) and S = C_s·P⁻·C_sᵀ + R_s.
+	// C_s·P⁻ (P symmetric, so rows of C_s against rows of P) and
+	// S = C_s·P⁻·C_sᵀ + R_s, k×k.
+	cs, cp, sf := f.cs[:k*n], f.cp[:k*n], f.sfull[:k*k]
+	flatMulNT(cp, cs, f.P, k, n, n, false)
+	flatMulNT(sf, cp, cs, k, k, n, false)
 	for l, i := range idx {
-		flatMulVec(f.cp[l*n:l*n+n], f.P, pr.c[i*n:i*n+n])
-	}
-	for l, i := range idx {
-		cpl := f.cp[l*n : l*n+n]
 		for mm := l; mm < k; mm++ {
-			j := idx[mm]
-			v := flatDot(cpl, pr.c[j*n:j*n+n]) + pr.r[i*p+j]
-			f.sfull[l*p+mm] = v
-			f.sfull[mm*p+l] = v
+			v := 0.5*(sf[l*k+mm]+sf[mm*k+l]) + pr.r[i*p+idx[mm]]
+			sf[l*k+mm] = v
+			sf[mm*k+l] = v
 		}
 	}
 	act := f.act[:k]
@@ -662,19 +649,19 @@ func (f *Filter) correctKalman(pat Pattern) Outcome {
 		ka := len(act)
 		if ka == 0 {
 			out.Used = 0
-			return out
+			return
 		}
 		ch := f.chol[:ka*ka]
 		for a, la := range act {
 			for b, lb := range act[:a+1] {
-				ch[a*ka+b] = f.sfull[la*p+lb]
+				ch[a*ka+b] = sf[la*k+lb]
 			}
 		}
 		if !flatCholesky(ch, ka) {
 			// Not positive definite: only possible when rounding has
 			// broken P; predict only.
 			out.Used = 0
-			return out
+			return
 		}
 		rs := f.rs[:ka]
 		for a, la := range act {
@@ -686,7 +673,7 @@ func (f *Filter) correctKalman(pat Pattern) Outcome {
 		}
 		worst, wv := 0, -1.0
 		for a, la := range act {
-			if e := rs[a] * rs[a] / f.sfull[la*p+la]; e > wv {
+			if e := rs[a] * rs[a] / sf[la*k+la]; e > wv {
 				worst, wv = a, e
 			}
 		}
@@ -697,17 +684,26 @@ func (f *Filter) correctKalman(pat Pattern) Outcome {
 	var used Pattern
 	for _, la := range act {
 		used |= Pattern(1) << uint(idx[la])
-		f.sv[idx[la]] = f.sfull[la*p+la]
+		f.sv[idx[la]] = sf[la*k+la]
 	}
 	f.svOK = true
 	out.Used, out.Corrected, out.HasNIS, out.NIS, out.Dof = used, true, true, nis, ka
 
 	// Kᵀ = S⁻¹·C_s·P⁻: the active rows of C_s·P⁻, solved with the Cholesky
-	// factor of S, forward and backward, row by row.
+	// factor of S, forward and backward, row by row. The active rows of C_s
+	// move to the top of cs (act is ascending, so row a comes from row
+	// act[a] ≥ a), and R_s for them goes to rr.
 	ch := f.chol[:ka*ka]
 	kt := f.kt[:ka*n]
+	rr := f.rr[:ka*ka]
 	for a, la := range act {
-		copy(kt[a*n:a*n+n], f.cp[la*n:la*n+n])
+		copy(kt[a*n:a*n+n], cp[la*n:la*n+n])
+		if la != a {
+			copy(cs[a*n:a*n+n], cs[la*n:la*n+n])
+		}
+		for b, lb := range act {
+			rr[a*ka+b] = pr.r[idx[la]*p+idx[lb]]
+		}
 	}
 	for a := 0; a < ka; a++ {
 		row := kt[a*n : a*n+n]
@@ -728,46 +724,30 @@ func (f *Filter) correctKalman(pat Pattern) Outcome {
 	for a := 0; a < ka; a++ {
 		flatAxpy(f.x, rs[a], kt[a*n:a*n+n])
 	}
-	// Joseph form. M = (I − K·C_s)·P⁻ = P⁻ − K·(C_s·P⁻) into Pn.
+	// Joseph form, a row i at a time into Pn:
+	//   M_i = P⁻_i − Σ_a K_ia·(C_s·P⁻)_a                (M = (I − K·C_s)·P⁻)
+	//   h_b = Σ_a K_ia·R_ab − M_i·C_sbᵀ                 (h = K·R_s − M·C_sᵀ)
+	//   row i of M·(I − K·C_s)ᵀ + K·R_s·Kᵀ = M_i + Σ_a h_a·Kᵀ_a,
+	// then symmetrised into P.
 	P, M := f.P, f.Pn
-	copy(M, P)
-	for a, la := range act {
-		cpRow := f.cp[la*n : la*n+n]
-		kRow := kt[a*n : a*n+n]
-		for i := 0; i < n; i++ {
-			if v := kRow[i]; v != 0 {
-				flatAxpy(M[i*n:i*n+n], -v, cpRow)
-			}
-		}
-	}
-	// H = K·R_s − M·C_sᵀ (n×ka), then P = M + H·Kᵀ = M·(I − K·C_s)ᵀ + K·R_s·Kᵀ.
-	h := f.h[:n*ka]
-	kr := f.kr[:ka]
+	h := f.h[:ka]
 	for i := 0; i < n; i++ {
-		for b := range kr {
-			kr[b] = 0
-		}
+		mi := M[i*n : i*n+n]
+		copy(mi, P[i*n:i*n+n])
 		for a, la := range act {
-			kia := kt[a*n+i]
-			ri := idx[la] * p
-			for b, lb := range act {
-				kr[b] += kia * pr.r[ri+idx[lb]]
-			}
+			flatAxpy(mi, -kt[a*n+i], cp[la*n:la*n+n])
 		}
-		mi := M[i*n : i*n+n]
-		for b, lb := range act {
-			h[i*ka+b] = kr[b] - flatDot(mi, pr.c[idx[lb]*n:idx[lb]*n+n])
+		for b := range h {
+			v := 0.0
+			for a := 0; a < ka; a++ {
+				v += kt[a*n+i] * rr[a*ka+b]
+			}
+			h[b] = v - flatDot(mi, cs[b*n:b*n+n])
+		}
+		for a, v := range h {
+			flatAxpy(mi, v, kt[a*n:a*n+n])
 		}
 	}
-	for i := 0; i < n; i++ {
-		mi := M[i*n : i*n+n]
-		for a := 0; a < ka; a++ {
-			if v := h[i*ka+a]; v != 0 {
-				flatAxpy(mi, v, kt[a*n:a*n+n])
-			}
-		}
-	}
-	// Symmetrise into P.
 	for i := 0; i < n; i++ {
 		P[i*n+i] = M[i*n+i]
 		for j := i + 1; j < n; j++ {
@@ -776,7 +756,6 @@ func (f *Filter) correctKalman(pat Pattern) Outcome {
 			P[j*n+i] = v
 		}
 	}
-	return out
 }
 
 // StateTo writes the published estimate, in absolute units (X0 + x̂), to
@@ -859,10 +838,18 @@ func (f *Filter) InnovationTo(dst []float64) {
 func (f *Filter) InnovationVarTo(dst []float64) {
 	f.check("InnovationVarTo", len(dst), f.p)
 	for i := range dst {
-		if f.svOK && f.used.Has(i) {
-			dst[i] = f.sv[i]
-		} else {
-			dst[i] = math.NaN()
+		dst[i] = math.NaN()
+	}
+	switch {
+	case f.svGain != nil:
+		for l, i := range f.svGain.idx {
+			dst[i] = f.svGain.sDiag[l]
+		}
+	case f.svOK:
+		for i := range dst {
+			if f.used.Has(i) {
+				dst[i] = f.sv[i]
+			}
 		}
 	}
 }
@@ -908,9 +895,13 @@ func flatCholesky(a []float64, k int) bool {
 // nil to divide.
 func flatForwardNorm(z, l, invDiag, r []float64) float64 {
 	k := len(r)
+	z = z[:k]
 	nis := 0.0
 	for i := 0; i < k; i++ {
-		v := r[i] - flatDot(l[i*k:i*k+i], z[:i])
+		v := r[i]
+		for j, lv := range l[i*k : i*k+i] {
+			v -= lv * z[j]
+		}
 		if invDiag != nil {
 			v *= invDiag[i]
 		} else {
@@ -922,13 +913,18 @@ func flatForwardNorm(z, l, invDiag, r []float64) float64 {
 	return nis
 }
 
-// flatDot returns Σ a_i·b_i over len(a) entries, with four partial sums so the
-// additions do not wait on each other.
+// The kernels below are the per-tick arithmetic: plain loops over row-major
+// slices. Dot products keep four partial sums so that the additions do not
+// wait on each other (gcc -O2 may not do this for C, which must keep the
+// order of a sum); the index arithmetic is written so that the compiler can
+// drop the bounds checks in the inner loops.
+
+// flatDot returns Σ a_i·b_i over len(a) entries.
 func flatDot(a, b []float64) float64 {
 	b = b[:len(a)]
 	var s0, s1, s2, s3 float64
 	i := 0
-	for ; i+4 <= len(a); i += 4 {
+	for ; i < len(a)-3; i += 4 {
 		s0 += a[i] * b[i]
 		s1 += a[i+1] * b[i+1]
 		s2 += a[i+2] * b[i+2]
@@ -943,19 +939,121 @@ func flatDot(a, b []float64) float64 {
 // flatMulVec sets dst = A·x for A row-major len(dst)×len(x).
 func flatMulVec(dst, a, x []float64) {
 	c := len(x)
-	for i := range dst {
-		dst[i] = flatDot(a[i*c:i*c+c], x)
+	for r := range dst {
+		row := a[r*c : r*c+c]
+		row = row[:len(x)]
+		var s0, s1, s2, s3 float64
+		i := 0
+		for ; i < len(x)-3; i += 4 {
+			s0 += row[i] * x[i]
+			s1 += row[i+1] * x[i+1]
+			s2 += row[i+2] * x[i+2]
+			s3 += row[i+3] * x[i+3]
+		}
+		for ; i < len(x); i++ {
+			s0 += row[i] * x[i]
+		}
+		dst[r] = (s0 + s1) + (s2 + s3)
+	}
+}
+
+// flatMulVec2 sets dst = A·x + B·u for A row-major len(dst)×len(x) and B
+// row-major len(dst)×len(u).
+func flatMulVec2(dst, a, x, b, u []float64) {
+	c, cu := len(x), len(u)
+	for r := range dst {
+		row := a[r*c : r*c+c]
+		row = row[:len(x)]
+		var s0, s1, s2, s3 float64
+		i := 0
+		for ; i < len(x)-3; i += 4 {
+			s0 += row[i] * x[i]
+			s1 += row[i+1] * x[i+1]
+			s2 += row[i+2] * x[i+2]
+			s3 += row[i+3] * x[i+3]
+		}
+		for ; i < len(x); i++ {
+			s0 += row[i] * x[i]
+		}
+		brow := b[r*cu : r*cu+cu]
+		brow = brow[:len(u)]
+		for j, v := range brow {
+			s1 += v * u[j]
+		}
+		dst[r] = (s0 + s1) + (s2 + s3)
 	}
 }
 
 // flatMulVecAdd adds A·x to dst for A row-major len(dst)×len(x).
 func flatMulVecAdd(dst, a, x []float64) {
 	c := len(x)
-	if c == 0 {
-		return
+	for r := range dst {
+		row := a[r*c : r*c+c]
+		row = row[:len(x)]
+		var s0, s1, s2, s3 float64
+		i := 0
+		for ; i < len(x)-3; i += 4 {
+			s0 += row[i] * x[i]
+			s1 += row[i+1] * x[i+1]
+			s2 += row[i+2] * x[i+2]
+			s3 += row[i+3] * x[i+3]
+		}
+		for ; i < len(x); i++ {
+			s0 += row[i] * x[i]
+		}
+		dst[r] += (s0 + s1) + (s2 + s3)
 	}
-	for i := range dst {
-		dst[i] += flatDot(a[i*c:i*c+c], x)
+}
+
+// flatMulNT sets dst (ra×rb, row-major) to A·Bᵀ for A ra×k and B rb×k,
+// both row-major: every entry is a row of A against a row of B. With upper
+// set (ra == rb), only the entries on and above the diagonal are computed
+// (and a few below it, in the diagonal blocks); the rest of dst is left as
+// it was. It works in 2×2 blocks: four sums share each pair of loads.
+func flatMulNT(dst, a, b []float64, ra, rb, k int, upper bool) {
+	i := 0
+	for ; i+1 < ra; i += 2 {
+		a0 := a[i*k : i*k+k]
+		a1 := a[(i+1)*k : (i+1)*k+k]
+		a1 = a1[:len(a0)]
+		d0 := dst[i*rb : i*rb+rb]
+		d1 := dst[(i+1)*rb : (i+1)*rb+rb]
+		j := 0
+		if upper {
+			j = i
+		}
+		for ; j+1 < rb; j += 2 {
+			b0 := b[j*k : j*k+k]
+			b1 := b[(j+1)*k : (j+1)*k+k]
+			b0 = b0[:len(a0)]
+			b1 = b1[:len(a0)]
+			var s00, s01, s10, s11 float64
+			for l, x0 := range a0 {
+				x1 := a1[l]
+				y0, y1 := b0[l], b1[l]
+				s00 += x0 * y0
+				s01 += x0 * y1
+				s10 += x1 * y0
+				s11 += x1 * y1
+			}
+			d0[j], d0[j+1] = s00, s01
+			d1[j], d1[j+1] = s10, s11
+		}
+		if j < rb {
+			bj := b[j*k : j*k+k]
+			d0[j] = flatDot(a0, bj)
+			d1[j] = flatDot(a1, bj)
+		}
+	}
+	if i < ra {
+		ai := a[i*k : i*k+k]
+		j := 0
+		if upper {
+			j = i
+		}
+		for ; j < rb; j++ {
+			dst[i*rb+j] = flatDot(ai, b[j*k:j*k+k])
+		}
 	}
 }
 
