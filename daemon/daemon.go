@@ -218,6 +218,7 @@ type Daemon struct {
 	ran atomic.Bool
 
 	comm *commissioning // reloads, audit, control service (reload.go)
+	page *Page          // the live page at / (page.go)
 
 	// Set by Run.
 	ns          *server.Server // the embedded server, when it is ours
@@ -286,6 +287,9 @@ func New(opts Options) (*Daemon, error) {
 		Log:      d.log,
 	})
 	if err != nil {
+		return nil, err
+	}
+	if d.page, err = newDaemonPage(d); err != nil {
 		return nil, err
 	}
 	return d, nil

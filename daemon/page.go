@@ -1078,3 +1078,37 @@ func (p *Page) gatherSamples() (map[string][]byte, error) {
 	}
 	return out, err
 }
+
+// newDaemonPage builds the live page of a daemon's estimators, adds its
+// routes to the daemon's HTTP server and feeds it every tick from an
+// estimate listener: the active estimate, the candidate lane's (read from
+// the engine on the tick's goroutine into a buffer of the page's) and the
+// tick's timing.
+func newDaemonPage(d *Daemon) (*Page, error) {
+	ests := make([]PageEstimator, len(d.estimators))
+	cands := make(map[*Estimator]*Estimate, len(d.estimators))
+	for i, e := range d.estimators {
+		ests[i] = PageEstimator{Plant: e.plant, Gains: e.Gains}
+		cands[e] = e.engine.NewEstimate()
+	}
+	opts := PageOptions{Gatherer: d.reg, Log: d.log}
+	if d.comm != nil && d.comm.audit != nil {
+		opts.AuditTail = d.comm.audit.Tail
+	}
+	p, err := NewPage(ests, opts)
+	if err != nil {
+		return nil, err
+	}
+	p.Register(d)
+	d.OnEstimate(func(e *Estimator, est *Estimate, _ []byte) {
+		var cand *Estimate
+		if buf := cands[e]; buf != nil && e.engine.CandidateTo(buf) {
+			cand = buf
+		}
+		p.Observe(e.name, est, cand, e.Timing())
+	})
+	return p, nil
+}
+
+// Page returns the daemon's live page, served at "/".
+func (d *Daemon) Page() *Page { return d.page }

@@ -44,6 +44,7 @@ type Estimator struct {
 
 	comm   *Commissioner // reloads, shadow, promotion (reload.go)
 	shadow shadowLane    // the candidate's estimate, tick only (shadow.go)
+	timing TickTiming    // of the tick being run, tick only (Timing)
 }
 
 // signal is one wired signal of an estimator.
@@ -180,7 +181,8 @@ func (e *Estimator) tick(t Tick) {
 		}
 	}
 	e.afterTick(connected)
-	e.metrics.ObserveTick(e.est.Status, t.Lateness, time.Since(t.Start), t.Missed)
+	e.timing = TickTiming{Lateness: t.Lateness, Compute: time.Since(t.Start), Missed: t.Missed}
+	e.metrics.ObserveTick(e.est.Status, e.timing.Lateness, e.timing.Compute, e.timing.Missed)
 	e.lastTick.Store(d.now())
 	ready := connected && e.gainsOK.Load()
 	if r := b2i(ready); r != e.lastReady {
@@ -193,6 +195,11 @@ func (e *Estimator) tick(t Tick) {
 		}
 	}
 }
+
+// Timing returns the lateness, compute time and missed ticks of the tick
+// whose estimate is being handed to the listeners; call it from an
+// EstimateFunc (the tick's goroutine).
+func (e *Estimator) Timing() TickTiming { return e.timing }
 
 // observeLatency records, for every measurement the estimate was corrected
 // with, the time from its receipt to now, the publication of the estimate.
