@@ -335,6 +335,14 @@ func (p *csvParser) header(h []string, line int) error {
 	return nil
 }
 
+// quoteCell quotes a cell for a message, cut to its first 40 bytes.
+func quoteCell(b []byte) string {
+	if len(b) > 40 {
+		return strconv.Quote(string(b[:40])) + "…"
+	}
+	return strconv.Quote(string(b))
+}
+
 func quoteList(h []string) string {
 	var b strings.Builder
 	for i, s := range h {
@@ -414,11 +422,11 @@ func (p *csvParser) row(row [][]byte, lines []int) error {
 		}
 		v, ok := p.parseValue(text)
 		if !ok {
-			p.issue(lines[j], c.name, fmt.Sprintf("%q is not a number; skipped", text))
+			p.issue(lines[j], c.name, fmt.Sprintf("%s is not a number; skipped", quoteCell(text)))
 			continue
 		}
 		if math.IsNaN(v) || math.IsInf(v, 0) {
-			p.issue(lines[j], c.name, fmt.Sprintf("%q is not a finite number; skipped", text))
+			p.issue(lines[j], c.name, fmt.Sprintf("%s is not a finite number; skipped", quoteCell(text)))
 			continue
 		}
 		// Set the fields in place: appending a Sample value would copy
@@ -477,7 +485,7 @@ func (p *csvParser) parseTime(s []byte, line int) (time.Time, error) {
 				}
 			} else {
 				return time.Time{}, errorf(p.name, line, tname,
-					"%q is not a time: want RFC 3339, a date and time without a zone, or seconds", s)
+					"%s is not a time: want RFC 3339, a date and time without a zone, or seconds", quoteCell(s))
 			}
 		}
 	}
@@ -486,20 +494,20 @@ func (p *csvParser) parseTime(s []byte, line int) (time.Time, error) {
 		w, ok := parseWall(s)
 		if !ok {
 			return time.Time{}, errorf(p.name, line, tname,
-				"%q is not a date and time (want 2006-01-02T15:04:05.999Z07:00, or without a zone)", s)
+				"%s is not a date and time (want 2006-01-02T15:04:05.999Z07:00, or without a zone)", quoteCell(s))
 		}
 		if w.hasZone {
 			return time.Unix(w.seconds()-int64(w.offset), int64(w.nsec)).In(p.out), nil
 		}
 		if p.opts.Location == nil {
 			return time.Time{}, errorf(p.name, line, tname,
-				"%q has no zone: give the location the file's times are in", s)
+				"%s has no zone: give the location the file's times are in", quoteCell(s))
 		}
 		return p.local(&w, s, line)
 	case TimeUnix, TimeElapsed:
 		sec, nsec, ok := parseSeconds(s, p.opts.DecimalComma)
 		if !ok {
-			return time.Time{}, errorf(p.name, line, tname, "%q is not a number of seconds (%s time)", s, p.format)
+			return time.Time{}, errorf(p.name, line, tname, "%s is not a number of seconds (%s time)", quoteCell(s), p.format)
 		}
 		if p.format == TimeUnix {
 			return time.Unix(sec, nsec).In(p.out), nil
@@ -515,7 +523,7 @@ func (p *csvParser) local(w *wallTime, s []byte, line int) (time.Time, error) {
 	switch n {
 	case 0:
 		return time.Time{}, errorf(p.name, line, p.cols[p.timeIdx].name,
-			"%q does not exist in %s (the clocks jump forward there): is the file in another zone?", s, p.opts.Location)
+			"%s does not exist in %s (the clocks jump forward there): is the file in another zone?", quoteCell(s), p.opts.Location)
 	case 1:
 		p.flushAmbiguous()
 		return time.Unix(p.resolvBuf[0], int64(w.nsec)).In(p.out), nil

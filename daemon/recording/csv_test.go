@@ -1,7 +1,10 @@
 package recording
 
 import (
+	"bytes"
 	"errors"
+	"io"
+	"os"
 	"strings"
 	"testing"
 	"time"
@@ -535,5 +538,44 @@ func TestParseSeconds(t *testing.T) {
 		if ok != tc.ok || (ok && (sec != tc.sec || nsec != tc.nsec)) {
 			t.Errorf("parseSeconds(%q, %v) = %d, %d, %v; want %d, %d, %v", tc.in, tc.comma, sec, nsec, ok, tc.sec, tc.nsec, tc.ok)
 		}
+	}
+}
+
+// TestReadCSVFromAFile reads the same export from a file (whose size the
+// reader looks up to reserve its slice), from a reader of unknown size and
+// with one line longer than the read buffer: all give the same samples.
+func TestReadCSVFromAFile(t *testing.T) {
+	data := historianCSV(3000)
+	long := "2024-05-06T00:05:00.050Z," + strings.Repeat("9", 70_000) + ",1,2,3,4\n"
+	data = append(data, long...)
+	path := t.TempDir() + "/export.csv"
+	if err := os.WriteFile(path, data, 0o600); err != nil {
+		t.Fatal(err)
+	}
+	f, err := os.Open(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer f.Close()
+	fromFile, err := ReadCSV(f, path, CSVOptions{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	fromPipe, err := ReadCSV(io.MultiReader(bytes.NewReader(data)), "pipe", CSVOptions{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	// 3000 rows of 5 values, then the long row's 4 short values; its
+	// 70,000-digit number is 9.99…e69999, beyond float64: not finite.
+	if len(fromFile.Samples) != 3000*5+4 || len(fromPipe.Samples) != len(fromFile.Samples) {
+		t.Fatalf("%d and %d samples, want %d", len(fromFile.Samples), len(fromPipe.Samples), 3000*5+4)
+	}
+	for i := range fromFile.Samples {
+		if fromFile.Samples[i] != fromPipe.Samples[i] {
+			t.Fatalf("sample %d differs: %v and %v", i, fromFile.Samples[i], fromPipe.Samples[i])
+		}
+	}
+	if len(fromFile.Issues) != 1 || fromFile.Issues[0].Line != 3002 || !strings.Contains(fromFile.Issues[0].Msg, "not a finite number") {
+		t.Errorf("issues %v, want one on line 3002", fromFile.Issues)
 	}
 }

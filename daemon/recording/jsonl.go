@@ -96,7 +96,7 @@ func ReadJSONL(r io.Reader, name string) (*BusRecording, error) {
 		recv, ok := d.recvTime()
 		if !ok {
 			return nil, &Error{Name: name, Line: line, Column: "recv",
-				Msg: fmt.Sprintf("%q is not an RFC 3339 time with a zone, in the years 1 to 9999", d.recv)}
+				Msg: quoteCell(d.recv) + " is not an RFC 3339 time with a zone, in the years 1 to 9999"}
 		}
 		subj, ok := subjects[string(d.subject)]
 		if !ok {
@@ -201,13 +201,13 @@ func (d *lineDecoder) decode(b []byte) string {
 			k = 3
 			d.payload, i, msg = appendString(d.payload, b, i)
 		default:
-			return fmt.Sprintf("unknown member %q", key)
+			return "unknown member " + quoteCell(key)
 		}
 		if msg != "" {
 			return string(key) + ": " + msg
 		}
 		if seen[k] {
-			return fmt.Sprintf("member %q given twice", key)
+			return "member " + quoteCell(key) + " given twice"
 		}
 		seen[k] = true
 		i = skipSpace(b, i)
