@@ -118,7 +118,9 @@ type job struct {
 // starts; a tick already running finishes on its own. remove may be called
 // any number of times and from any goroutine, fn included.
 //
-// fn runs on a worker goroutine, never twice at once for the same job. name
+// fn runs on a worker goroutine, never twice at once for the same job; its
+// first tick may run before Add returns (a job that removes itself must allow
+// for that). name
 // identifies the job in panics and debugging output. Add panics if period is
 // not positive or fn is nil: both are programmer mistakes.
 func (s *Scheduler) Add(name string, period time.Duration, fn func(Tick)) (remove func()) {

@@ -186,8 +186,10 @@ func TestTickSourceManyJobs(t *testing.T) {
 	d := measureFor(t, time.Second)
 	for _, tc := range []struct {
 		name   string
-		before bool
-	}{{"added before Run", true}, {"added while running", false}} {
+		before bool // else added while running
+		spread bool // 10 jobs a millisecond over one period, by a 1 kHz job
+	}{{"added before Run (one phase)", true, false}, {"added while running (in a burst)", false, false},
+		{"added while running (phases spread over the period)", false, true}} {
 		t.Run(tc.name, func(t *testing.T) {
 			var delivered, missed atomic.Uint64
 			fn := func(tk Tick) {
@@ -208,7 +210,24 @@ func TestTickSourceManyJobs(t *testing.T) {
 			}
 			start := time.Now()
 			go func() { errc <- s.Run(ctx) }()
-			if !tc.before {
+			switch {
+			case tc.spread:
+				// The adder may tick before Add returns its remove function.
+				var removeAdder atomic.Pointer[func()]
+				added := 0
+				remove := s.Add("adder", time.Millisecond, func(Tick) {
+					for range jobs / int(period/time.Millisecond) {
+						if added < jobs {
+							s.Add("job", period, fn)
+							added++
+						}
+					}
+					if r := removeAdder.Load(); added == jobs && r != nil {
+						(*r)()
+					}
+				})
+				removeAdder.Store(&remove)
+			case !tc.before:
 				for range jobs {
 					s.Add("job", period, fn)
 				}
