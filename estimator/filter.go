@@ -252,10 +252,15 @@ func (pr *Prepared) compileKalman(md *Model, g *GainSet) error {
 }
 
 // steadyStatePrior returns the steady-state a priori error covariance of
-// the Kalman filter for (A, C, Q, R), row-major, or nil when it cannot be
-// computed.
+// the Kalman filter for (A, C, Q, R) (SteadyStateKalman), row-major, or nil
+// when there is none: (A, C) not detectable, or a mode on the unit circle
+// that Q does not excite.
 func steadyStatePrior(md *Model, q, r *mat.SymDense) []float64 {
-	return nil
+	kg, err := SteadyStateKalman(md.A, md.C, q, r)
+	if err != nil {
+		return nil
+	}
+	return denseFlat(kg.P)
 }
 
 // Model returns the model the gain set was prepared for.
@@ -366,8 +371,8 @@ type Filter struct {
 // estimate x̂(0|−1): the first Step does not predict.
 //
 // p0 is the initial covariance of the Kalman form. When it is nil the
-// filter starts from the steady-state a priori covariance of the set when
-// that is known, else from 10·Q. Fixed gains ignore p0 except to keep it for
+// filter starts from the steady-state a priori covariance of the set
+// (SteadyStateKalman with all outputs) when there is one, else from 10·Q. Fixed gains ignore p0 except to keep it for
 // a later switch to a Kalman set (see Use). It panics if x0 or p0 has the
 // wrong dimension.
 func NewFilter(pr *Prepared, x0 []float64, p0 mat.Symmetric) *Filter {

@@ -151,6 +151,56 @@ func TestKalmanScalarRandomWalk(t *testing.T) {
 	}
 }
 
+func TestKalmanConvergesToSteadyState(t *testing.T) {
+	// The time-varying filter's covariance, started far from it, converges
+	// to the steady-state Kalman filter's: P(k|k−1) → P and P(k|k) → P⁺ of
+	// SteadyStateKalman (solved there by a different method, a DARE), and
+	// NewFilter without p0 starts there already.
+	md := threeModel()
+	ss, err := SteadyStateKalman(md.A, md.C, md.Q, md.R)
+	if err != nil {
+		t.Fatal(err)
+	}
+	pr := mustPrepare(t, md, &GainSet{Name: "kf", Form: Kalman}, 0)
+	f := NewFilter(pr, nil, mat.NewSymDense(3, []float64{100, 0, 0, 0, 100, 0, 0, 0, 100}))
+	u, y := []float64{10}, []float64{20, -3}
+	var p mat.SymDense
+	near := func(what string, got, want mat.Matrix) {
+		t.Helper()
+		if d := maxAbsDiffFlat(got, want); d > 1e-10 {
+			t.Errorf("%s: differs from SteadyStateKalman by %v", what, d)
+		}
+	}
+	for k := 0; k < 400; k++ {
+		f.Step(u, y, 3)
+	}
+	f.CovarianceTo(&p)
+	near("P(k|k)", &p, ss.Pplus)
+	f.Step(u, y, 0) // predict only: P(k+1|k)
+	f.CovarianceTo(&p)
+	near("P(k+1|k)", &p, ss.P)
+	g := NewFilter(pr, nil, nil)
+	g.CovarianceTo(&p)
+	near("NewFilter's P", &p, ss.P)
+	sv := make([]float64, 2)
+	g.Step(u, y, 3)
+	g.InnovationVarTo(sv)
+	if math.Abs(sv[0]-ss.S.At(0, 0)) > 1e-12 || math.Abs(sv[1]-ss.S.At(1, 1)) > 1e-12 {
+		t.Errorf("S_ii = %v, want diag of SteadyStateKalman's S", sv)
+	}
+}
+
+func maxAbsDiffFlat(a, b mat.Matrix) float64 {
+	r, c := a.Dims()
+	d := 0.0
+	for i := 0; i < r; i++ {
+		for j := 0; j < c; j++ {
+			d = math.Max(d, math.Abs(a.At(i, j)-b.At(i, j)))
+		}
+	}
+	return d
+}
+
 func TestPredictionFormRecursion(t *testing.T) {
 	// The prediction-form observer x̂(k+1|k) = A·x̂(k|k−1) + B·u(k) +
 	// L·(y(k) − C·x̂(k|k−1) − D·u(k)) (gains.go; any sampled-data text),
@@ -470,8 +520,9 @@ func TestOutlierGate(t *testing.T) {
 func TestNISConsistency(t *testing.T) {
 	// A consistent filter's mean NIS over N ticks lies inside the 95% band
 	// of χ²(N·p)/N (Bar-Shalom, Li, Kirubarajan 2001); the same filter told
-	// that R is ten times smaller than it is falls outside. The fixed gain
-	// is the converged Riccati recursion (gonum, above).
+	// that R is ten times smaller than it is falls outside. The fixed gains
+	// are the steady-state Kalman gains, from DesignKalman and from the
+	// converged Riccati recursion (gonum, above).
 	const burn, ticks = 100, 2000
 	md := threeModel()
 	prior, post, s, kc := refRiccati(md.A, md.C, md.Q, md.R, 300)
@@ -479,11 +530,24 @@ func TestNISConsistency(t *testing.T) {
 	small.ScaleSym(0.1, md.R)
 	_, postS, sS, kcS := refRiccati(md.A, md.C, md.Q, small, 300)
 	lo, hi := MeanNISBand(ticks, 2, 0.95)
+	design := func(form Form, r *mat.SymDense) *GainSet {
+		d := *md
+		d.R = r
+		g, err := DesignKalman(&d, form, false)
+		if err != nil {
+			t.Fatal(err)
+		}
+		return g
+	}
 	tests := []struct {
 		name       string
 		set        *GainSet
 		consistent bool
 	}{
+		{"DesignKalman current form", design(Current, md.R), true},
+		{"DesignKalman prediction form", design(Prediction, md.R), true},
+		{"DesignKalman current form, R too small", design(Current, small), false},
+		{"DesignKalman prediction form, R too small", design(Prediction, small), false},
 		{"time-varying kalman", &GainSet{Name: "kf", Form: Kalman}, true},
 		{"kalman, R too small", &GainSet{Name: "kf-", Form: Kalman, Q: md.Q, R: small}, false},
 		{"steady-state current form", &GainSet{Name: "cur", Form: Current,
@@ -513,6 +577,51 @@ func TestNISConsistency(t *testing.T) {
 			t.Logf("mean NIS %.4f, band [%.4f, %.4f]", mean, lo, hi)
 			if inside := mean >= lo && mean <= hi; inside != tc.consistent {
 				t.Errorf("mean NIS %.4f, band [%.4f, %.4f]: inside = %v, want %v", mean, lo, hi, inside, tc.consistent)
+			}
+		})
+	}
+}
+
+func TestNISConsistencyWithDropouts(t *testing.T) {
+	// The time-varying Kalman filter stays consistent when outputs come and
+	// go: the sum of its NIS values over the ticks with a NIS is χ² with the
+	// summed dof (Bar-Shalom, Li, Kirubarajan 2001), which NISWindow's band
+	// checks. Told R ten times too small, it is flagged.
+	md := threeModel()
+	small := mat.NewSymDense(2, nil)
+	small.ScaleSym(0.1, md.R)
+	patterns := []Pattern{3, 1, 3, 2, 0, 1, 3}
+	for _, tc := range []struct {
+		name       string
+		set        *GainSet
+		consistent bool
+	}{
+		{"kalman", &GainSet{Name: "kf", Form: Kalman}, true},
+		{"kalman, R too small", &GainSet{Name: "kf-", Form: Kalman, Q: md.Q, R: small}, false},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			const ticks = 3000
+			pl := NewPlant(md, 99, nil)
+			f := NewFilter(mustPrepare(t, md, tc.set, 0), nil, nil)
+			w := NewNISWindow(ticks)
+			y := make([]float64, 2)
+			for k := 0; k < ticks; k++ {
+				u := []float64{10 + math.Sin(0.05*float64(k))}
+				pl.Step(u)
+				pl.OutputTo(y)
+				pat := patterns[k%len(patterns)]
+				out := f.Step(u, y, pat)
+				if out.Used != pat || out.Dof != pat.Len() || out.HasNIS != (pat != 0) {
+					t.Fatalf("tick %d, outputs %b: outcome %+v", k, pat, out)
+				}
+				if out.HasNIS {
+					w.Add(out.NIS, out.Dof)
+				}
+			}
+			lo, hi := w.Band(0.95)
+			t.Logf("mean NIS %.4f over %d ticks, %d dof; band [%.4f, %.4f]", w.Mean(), w.Len(), w.Dof(), lo, hi)
+			if w.Inside(0.95) != tc.consistent {
+				t.Errorf("inside the band = %v, want %v", w.Inside(0.95), tc.consistent)
 			}
 		})
 	}
@@ -614,9 +723,13 @@ func TestUse(t *testing.T) {
 		var p mat.SymDense
 		u, y := []float64{10}, []float64{20, -3}
 		f.Step(u, y, 3)
-		f.Use(kf) // fixed → Kalman: no steady-state P known yet, so p0
-		if !f.CovarianceTo(&p) || p.At(1, 1) != 2 {
-			t.Errorf("after fixed → Kalman, P[1,1] = %v, want p0's 2", p.At(1, 1))
+		f.Use(kf) // fixed → Kalman: the steady-state a priori P
+		ss, err := SteadyStateKalman(md.A, md.C, md.Q, md.R)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if !f.CovarianceTo(&p) || !mat.Equal(&p, ss.P) {
+			t.Errorf("after fixed → Kalman, P = %v, want SteadyStateKalman's %v", mat.Formatted(&p), mat.Formatted(ss.P))
 		}
 		f.Step(u, y, 3)
 		f.CovarianceTo(&p)
@@ -631,6 +744,34 @@ func TestUse(t *testing.T) {
 		f.CovarianceTo(&p)
 		if p.At(0, 0) != post.At(0, 0) {
 			t.Errorf("fixed gains: P[0,0] = %v, want the stored %v", p.At(0, 0), post.At(0, 0))
+		}
+	})
+	t.Run("no steady state: p0, else 10·Q", func(t *testing.T) {
+		// The mode at 1 is not excited by Q, so no stabilising steady-state
+		// filter exists (SteadyStateKalman refuses), while a fixed gain
+		// still makes the error dynamics diag(0.5, 0.25) stable.
+		md := &Model{
+			A: mat.NewDense(2, 2, []float64{1, 0, 0, 0.5}), B: mat.NewDense(2, 1, nil),
+			C: mat.NewDense(2, 2, []float64{1, 0, 0, 1}), D: mat.NewDense(2, 1, nil), Ts: 1,
+			Q: mat.NewSymDense(2, []float64{0, 0, 0, 1}), R: mat.NewSymDense(2, []float64{1, 0, 0, 1}),
+		}
+		if _, err := SteadyStateKalman(md.A, md.C, md.Q, md.R); err == nil {
+			t.Fatal("SteadyStateKalman found a steady state; the test needs a model without one")
+		}
+		fixed := mustPrepare(t, md, &GainSet{Name: "fixed", Form: Current,
+			Gains: []PatternGain{{Outputs: 3, L: mat.NewDense(2, 2, []float64{0.5, 0, 0, 0.5})}}}, 0)
+		kf := mustPrepare(t, md, &GainSet{Name: "kf", Form: Kalman}, 0)
+		p0 := mat.NewSymDense(2, []float64{3, 0, 0, 4})
+		var p mat.SymDense
+		f := NewFilter(fixed, nil, p0)
+		f.Use(kf)
+		if f.CovarianceTo(&p); !mat.Equal(&p, p0) {
+			t.Errorf("fixed → Kalman: P = %v, want p0", mat.Formatted(&p))
+		}
+		g := NewFilter(kf, nil, nil)
+		want := mat.NewSymDense(2, []float64{0, 0, 0, 10})
+		if g.CovarianceTo(&p); !mat.Equal(&p, want) {
+			t.Errorf("Kalman without p0: P = %v, want 10·Q", mat.Formatted(&p))
 		}
 	})
 	t.Run("allocation-free", func(t *testing.T) {
