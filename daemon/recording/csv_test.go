@@ -445,11 +445,13 @@ func TestParseWallAgainstTimeParse(t *testing.T) {
 // TestZoneResolverAgainstTimeDate compares, hour by hour over two years, the
 // resolver's instants with time.Date's, which picks one instant for an
 // ambiguous time and normalises a skipped one.
-// RFC 3339 §5.6 limits time-hour to 00–23, also in an offset; time.Parse
-// accepts "+24:00", parseWall does not.
-func TestParseWallRefusesOffset24(t *testing.T) {
-	if _, ok := parseWall("2024-05-06T07:08:09+24:00"); ok {
-		t.Error(`parseWall accepted the offset "+24:00"`)
+// RFC 3339 §5.6 limits time-hour to 00–23 and time-minute to 00–59, also
+// in an offset; time.Parse accepts "+24:00" and "+00:60", parseWall does not.
+func TestParseWallRefusesOffsetsOutOfRange(t *testing.T) {
+	for _, s := range []string{"2024-05-06T07:08:09+24:00", "2024-05-06T07:08:09+00:60"} {
+		if _, ok := parseWall(s); ok {
+			t.Errorf("parseWall accepted %q", s)
+		}
 	}
 }
 
