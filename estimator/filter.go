@@ -372,9 +372,9 @@ type Filter struct {
 //
 // p0 is the initial covariance of the Kalman form. When it is nil the
 // filter starts from the steady-state a priori covariance of the set
-// (SteadyStateKalman with all outputs) when there is one, else from 10·Q. Fixed gains ignore p0 except to keep it for
-// a later switch to a Kalman set (see Use). It panics if x0 or p0 has the
-// wrong dimension.
+// (SteadyStateKalman with all outputs) when there is one, else from 10·Q.
+// Fixed gains ignore p0 except to keep it for a later switch to a Kalman set
+// (see Use). It panics if x0 or p0 has the wrong dimension.
 func NewFilter(pr *Prepared, x0 []float64, p0 mat.Symmetric) *Filter {
 	n, m, p := pr.n, pr.m, pr.p
 	f := &Filter{
@@ -407,11 +407,11 @@ func NewFilter(pr *Prepared, x0 []float64, p0 mat.Symmetric) *Filter {
 func (f *Filter) Reset(x0 []float64, p0 mat.Symmetric) {
 	n := f.n
 	if x0 != nil && len(x0) != n {
-		panic(fmt.Sprintf("estimator: Filter.Reset: x0 has %d entries, want %d", len(x0), n))
+		panic(fmt.Sprintf("estimator: filter x0 has %d entries, want %d", len(x0), n))
 	}
 	if p0 != nil {
 		if d := p0.SymmetricDim(); d != n {
-			panic(fmt.Sprintf("estimator: Filter.Reset: p0 is %d×%d, want %d×%d", d, d, n, n))
+			panic(fmt.Sprintf("estimator: filter p0 is %d×%d, want %d×%d", d, d, n, n))
 		}
 		if f.p0 == nil {
 			f.p0 = make([]float64, n*n)
@@ -573,7 +573,17 @@ func (f *Filter) correctFixed(pat Pattern, out *Outcome) {
 			rs[l] = f.r[i]
 		}
 		if g.chol != nil {
-			nis := flatForwardNorm(f.z[:k], g.chol, g.invDiag, rs)
+			// NIS = |z|² with L·z = r, L the Cholesky factor of S.
+			nis := 0.0
+			z, ch, inv := f.z[:k], g.chol, g.invDiag[:k]
+			for i, v := range rs {
+				for j, lv := range ch[i*k : i*k+i] {
+					v -= lv * z[j]
+				}
+				v *= inv[i]
+				z[i] = v
+				nis += v * v
+			}
 			if pr.thr != nil && nis > pr.thr[k] {
 				worst, wv := 0, -1.0
 				for l, v := range rs {

@@ -903,3 +903,30 @@ func TestPrepareErrors(t *testing.T) {
 		}
 	})
 }
+
+func TestFilterPanics(t *testing.T) {
+	md := threeModel()
+	pr := mustPrepare(t, md, &GainSet{Name: "kf", Form: Kalman}, 0)
+	tests := []struct {
+		name string
+		f    func()
+	}{
+		{"x0 length", func() { NewFilter(pr, []float64{1}, nil) }},
+		{"p0 size", func() { NewFilter(pr, nil, mat.NewSymDense(2, nil)) }},
+		{"u length", func() { NewFilter(pr, nil, nil).Step([]float64{1, 2}, []float64{1, 2}, 3) }},
+		{"y length", func() { NewFilter(pr, nil, nil).Step([]float64{1}, []float64{1}, 3) }},
+		{"StateTo length", func() { NewFilter(pr, nil, nil).StateTo(make([]float64, 2)) }},
+		{"InnovationTo length", func() { NewFilter(pr, nil, nil).InnovationTo(make([]float64, 3)) }},
+		{"CovarianceTo size", func() { NewFilter(pr, nil, nil).CovarianceTo(mat.NewSymDense(2, nil)) }},
+	}
+	for _, tc := range tests {
+		t.Run(tc.name, func(t *testing.T) {
+			defer func() {
+				if recover() == nil {
+					t.Error("no panic")
+				}
+			}()
+			tc.f()
+		})
+	}
+}
