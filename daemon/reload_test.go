@@ -176,6 +176,10 @@ type cmRigOptions struct {
 	dwell             time.Duration
 	simX0             []float64 // the simulated cart's initial state (absolute); nil: the nominal
 	seed              uint64
+	// configMap lays the files out as Kubernetes mounts a ConfigMap:
+	// dir/cm/cart.yaml → ..data/cart.yaml, ..data → a timestamped
+	// directory (see cmConfigMapSwap).
+	configMap bool
 }
 
 func newCMRig(t testing.TB, o cmRigOptions) *cmRig {
@@ -186,7 +190,23 @@ func newCMRig(t testing.TB, o cmRigOptions) *cmRig {
 	if o.sets == nil {
 		o.sets = []string{"slow", "steady", "fast", "kalman"}
 	}
-	cmWriteAtomic(t, plant.GainsPath, cmGains(t, plant, o.active, o.candidate, o.sets...))
+	gainsData := cmGains(t, plant, o.active, o.candidate, o.sets...)
+	if o.configMap {
+		plantData, err := os.ReadFile(path)
+		if err != nil {
+			t.Fatal(err)
+		}
+		cm := filepath.Join(dir, "cm")
+		cmConfigMapSwap(t, cm, map[string][]byte{"cart.yaml": plantData, "cart.gains.yaml": gainsData})
+		for _, name := range []string{"cart.yaml", "cart.gains.yaml"} {
+			if err := os.Symlink(filepath.Join("..data", name), filepath.Join(cm, name)); err != nil {
+				t.Fatal(err)
+			}
+		}
+		plant = cmLoadPlant(t, filepath.Join(cm, "cart.yaml"))
+	} else {
+		cmWriteAtomic(t, plant.GainsPath, gainsData)
+	}
 	gains, err := config.LoadGains(plant.GainsPath, plant)
 	if err != nil {
 		t.Fatal(err)
@@ -519,5 +539,37 @@ func TestLoadSelection(t *testing.T) {
 				t.Errorf("gains in effect: active %s candidate %q", g.Active, g.Candidate)
 			}
 		})
+	}
+}
+
+// cmConfigMapSwap updates the ConfigMap-style directory cm as the kubelet
+// does: the files go into a new timestamped directory, a "..data_tmp"
+// symlink to it is renamed over "..data", and the old directory is removed.
+// The files users name (cm/cart.yaml → ..data/cart.yaml) never change.
+func cmConfigMapSwap(t testing.TB, cm string, files map[string][]byte) {
+	t.Helper()
+	if err := os.MkdirAll(cm, 0o755); err != nil {
+		t.Fatal(err)
+	}
+	old, _ := os.Readlink(filepath.Join(cm, "..data"))
+	stamp := fmt.Sprintf("..2026_05_04_10_00_00.%d", time.Now().UnixNano())
+	if err := os.Mkdir(filepath.Join(cm, stamp), 0o755); err != nil {
+		t.Fatal(err)
+	}
+	for name, data := range files {
+		if err := os.WriteFile(filepath.Join(cm, stamp, name), data, 0o644); err != nil {
+			t.Fatal(err)
+		}
+	}
+	if err := os.Symlink(stamp, filepath.Join(cm, "..data_tmp")); err != nil {
+		t.Fatal(err)
+	}
+	if err := os.Rename(filepath.Join(cm, "..data_tmp"), filepath.Join(cm, "..data")); err != nil {
+		t.Fatal(err)
+	}
+	if old != "" {
+		if err := os.RemoveAll(filepath.Join(cm, old)); err != nil {
+			t.Fatal(err)
+		}
 	}
 }
