@@ -1,8 +1,12 @@
 package daemon
 
 import (
+	"errors"
+	"fmt"
 	"math"
+	"strings"
 	"testing"
+	"time"
 
 	"gonum.org/v1/gonum/mat"
 
@@ -114,5 +118,264 @@ func TestShadowSubject(t *testing.T) {
 		if got := ShadowSubject(c.in); got != c.want {
 			t.Errorf("ShadowSubject(%q) = %q, want %q", c.in, got, c.want)
 		}
+	}
+}
+
+// shadowRig runs the cart with the slow placed set active and the Kalman
+// filter as the candidate, the simulated cart starting 3 m and 0.8 m/s away
+// from the estimators' initial state (1.5 and 0.8 of the initial standard
+// deviations of the plant file).
+func shadowRig(t testing.TB, candidate string, dwell time.Duration) *cmRig {
+	return newCMRig(t, cmRigOptions{active: "slow", candidate: candidate, sets: []string{"slow", "kalman"},
+		simX0: []float64{4, 0.8}, seed: 2026, dwell: dwell})
+}
+
+// TestShadowCandidateIsMeasurablyBetter runs the slow placed set (observer
+// poles 0.995 and 0.99: time constants of 200 and 100 ticks) against the
+// Kalman filter in shadow on the same samples for 600 ticks, and compares
+// their windowed consistency over the last 200: the Kalman filter's mean
+// NIS lies in the 95 % chi-square band of a 200-tick window (Bar-Shalom, Li
+// and Kirubarajan: 200·mean is χ²(200) for a consistent filter), the slow
+// set's lies far above it (it has not converged from the initial error), and
+// the Kalman filter's innovation RMS is less than half the slow set's. The
+// candidate never changes the active estimate: a twin run without it
+// publishes the same numbers.
+func TestShadowCandidateIsMeasurablyBetter(t *testing.T) {
+	r := shadowRig(t, "kalman", 0)
+	twin := shadowRig(t, "", 0)
+	for k := 0; k < 600; k++ {
+		r.tick()
+		twin.tick()
+		if !r.hasCand || r.cand.Gains != "kalman" || r.est.Gains != "slow" {
+			t.Fatalf("tick %d: active %s, candidate %v %s", k, r.est.Gains, r.hasCand, r.cand.Gains)
+		}
+		for i := range r.est.States {
+			if a, b := r.est.States[i].Value, twin.est.States[i].Value; a != b {
+				t.Fatalf("tick %d: state %d is %v with a candidate, %v without", k, i, a, b)
+			}
+		}
+	}
+	lo, hi := estimator.MeanNISBand(200, 1, 0.95)
+	stats := func(gains string) (mean, blo, bhi, rms float64) {
+		l := map[string]string{"estimator": "cart", "gains": gains}
+		return r.metric("surmise_nis_window_mean", l), r.metric("surmise_nis_band_lower", l), r.metric("surmise_nis_band_upper", l),
+			r.metric("surmise_innovation_rms", map[string]string{"estimator": "cart", "gains": gains, "output": "position_pv"})
+	}
+	km, klo, khi, krms := stats("kalman")
+	sm, _, _, srms := stats("slow")
+	t.Logf("kalman: NIS mean %.3f in [%.3f, %.3f], innovation RMS %.4f m; slow: NIS mean %.3f, RMS %.4f m", km, klo, khi, krms, sm, srms)
+	if math.Abs(klo-lo) > 1e-9 || math.Abs(khi-hi) > 1e-9 {
+		t.Errorf("band [%v, %v] in the metrics, want MeanNISBand(200, 1) = [%v, %v]", klo, khi, lo, hi)
+	}
+	if !(km >= lo && km <= hi) {
+		t.Errorf("the Kalman candidate's windowed NIS mean %v is outside [%v, %v]", km, lo, hi)
+	}
+	if !(sm > hi) {
+		t.Errorf("the slow set's windowed NIS mean %v is not above the band's %v", sm, hi)
+	}
+	if !(krms < 0.5*srms) {
+		t.Errorf("innovation RMS: candidate %v, active %v; want the candidate's below half", krms, srms)
+	}
+	st := r.c.Status()
+	if st.Shadow == nil || st.Shadow.Gains != "kalman" || st.Tick == nil || st.Tick.Gains != "slow" {
+		t.Fatalf("status tick %+v shadow %+v", st.Tick, st.Shadow)
+	}
+	if float64(st.Shadow.NISMean) != km || float64(st.Tick.NISMean) != sm {
+		t.Errorf("status NIS means %v and %v, metrics %v and %v", st.Shadow.NISMean, st.Tick.NISMean, km, sm)
+	}
+}
+
+// TestPromote promotes the Kalman candidate both ways and rolls back.
+func TestPromote(t *testing.T) {
+	t.Run("keep-state", func(t *testing.T) {
+		r := shadowRig(t, "kalman", -1)
+		for k := 0; k < 100; k++ {
+			r.tick()
+		}
+		// What the slow prediction-form set leaves for the next tick: its
+		// estimate x̂(k|k−1), the input held and its pending correction
+		// L·r(k), which enters the next prediction whatever the gains.
+		xPrev := []float64{r.est.States[0].Value - 1, r.est.States[1].Value}
+		uPrev, rPrev := r.u[0], r.est.Outputs[0].Innovation
+		lSlow := cmSet(t, r.plant.Model, "slow").Set.Gains[0].L
+		rep, err := r.c.Promote(PromoteRequest{}, Origin{Who: "reply-subject: _INBOX.x", Claimed: "ann@bench"})
+		if err != nil {
+			t.Fatal(err)
+		}
+		if !rep.Applied || rep.Transfer != KeepState || rep.Active.Name != "kalman" || rep.Previous.Name != "slow" || rep.Jump != nil {
+			t.Fatalf("reply %+v", rep)
+		}
+		r.tick()
+		if r.est.Gains != "kalman" || r.hasCand {
+			t.Fatalf("after promotion: active %s, candidate lane %v", r.est.Gains, r.hasCand)
+		}
+		// No jump from the swap itself: the Kalman set predicts from the
+		// slow set's state, x̂(k+1|k) = A·x̂ + B·u + L·r (A, B of the
+		// cart), and corrects the position by K·r with 0 ≤ K < 1 for
+		// one position measurement: between the prediction and y.
+		pred := 1 + (xPrev[0] + 0.1*xPrev[1]) + 0.005*uPrev + lSlow.At(0, 0)*rPrev
+		if got := r.est.Outputs[0].Predicted; math.Abs(got-pred) > 1e-9 {
+			t.Errorf("predicted position after keep-state %v, want %v from the slow set's state", got, pred)
+		}
+		lo, hi := math.Min(pred, r.y[0]), math.Max(pred, r.y[0])
+		if got := r.est.States[0].Value; got < lo-1e-12 || got > hi+1e-12 {
+			t.Errorf("position after keep-state %v, not between the prediction %v and the measurement %v", got, pred, r.y[0])
+		}
+		tail := r.audit.Tail("cart", 1)
+		if len(tail) != 1 || tail[0].Action != "promote" || tail[0].Transfer != "keep-state" ||
+			tail[0].Origin != "reply-subject: _INBOX.x" || tail[0].ClaimedBy != "ann@bench" {
+			t.Errorf("audit %+v", tail)
+		}
+		if _, err := r.c.Rollback(Origin{}); err != nil {
+			t.Fatal(err)
+		}
+		r.tick()
+		if r.est.Gains != "slow" {
+			t.Errorf("after rollback: %s", r.est.Gains)
+		}
+	})
+	t.Run("adopt-state", func(t *testing.T) {
+		r := shadowRig(t, "kalman", -1)
+		twin := shadowRig(t, "kalman", -1)
+		if _, err := r.c.Promote(PromoteRequest{Transfer: AdoptState, Confirm: true}, Origin{}); err == nil ||
+			!strings.Contains(err.Error(), "has not run a tick") {
+			t.Fatalf("adopt before any tick: %v", err)
+		}
+		for k := 0; k < 100; k++ {
+			r.tick()
+			twin.tick()
+		}
+		rep, err := r.c.Promote(PromoteRequest{Transfer: AdoptState}, Origin{})
+		if err != nil {
+			t.Fatal(err)
+		}
+		dx := r.cand.States[0].Value - r.est.States[0].Value
+		dv := r.cand.States[1].Value - r.est.States[1].Value
+		if rep.Applied || rep.Jump == nil || math.Abs(rep.Jump.Norm-math.Hypot(dx, dv)) > 1e-12 ||
+			rep.Jump.States[0].Name != "position" || rep.Jump.States[0].Difference != dx {
+			t.Fatalf("unconfirmed reply %+v", rep)
+		}
+		if rep.Jump.Norm < 1 {
+			t.Errorf("jump %v: the slow set should still be far off", rep.Jump.Norm)
+		}
+		r.tick()
+		twin.tick()
+		if r.est.Gains != "slow" || !r.hasCand || r.c.Status().Active.Name != "slow" {
+			t.Fatalf("an unconfirmed adopt-state changed something")
+		}
+		if _, err := r.c.Promote(PromoteRequest{Transfer: AdoptState, Confirm: true}, Origin{}); err != nil {
+			t.Fatal(err)
+		}
+		r.tick()
+		twin.tick()
+		// The active lane is now the candidate's lane: the same numbers
+		// as the twin's candidate.
+		if r.est.Gains != "kalman" || r.hasCand {
+			t.Fatalf("after adopt-state: active %s, candidate lane %v", r.est.Gains, r.hasCand)
+		}
+		for i := range r.est.States {
+			if a, b := r.est.States[i].Value, twin.cand.States[i].Value; a != b {
+				t.Errorf("state %d: %v after adopting, the candidate lane gives %v", i, a, b)
+			}
+		}
+		if tail := r.audit.Tail("cart", 1); len(tail) != 1 || tail[0].Transfer != "adopt-state" || tail[0].Jump == nil {
+			t.Errorf("audit %+v", tail)
+		}
+	})
+}
+
+// TestPromoteRefusals covers the refused promotions and roll-backs and the
+// minimum dwell time.
+func TestPromoteRefusals(t *testing.T) {
+	r := shadowRig(t, "kalman", 10*time.Second)
+	r.tick()
+	code := func(err error) string {
+		var ce *CommissionError
+		if errors.As(err, &ce) {
+			return ce.Code
+		}
+		return fmt.Sprint(err)
+	}
+	if _, err := r.c.Promote(PromoteRequest{Transfer: "swap"}, Origin{}); code(err) != CodeBadRequest {
+		t.Errorf("unknown transfer: %v", err)
+	}
+	if _, err := r.c.Rollback(Origin{}); code(err) != CodeRefused || !strings.Contains(err.Error(), "nothing to roll back") {
+		t.Errorf("rollback with no previous set: %v", err)
+	}
+	if _, err := r.c.Promote(PromoteRequest{}, Origin{}); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := r.c.Promote(PromoteRequest{}, Origin{}); code(err) != CodeRefused || !strings.Contains(err.Error(), "nothing to promote") {
+		t.Errorf("promote with no candidate: %v", err)
+	}
+	_, err := r.c.Rollback(Origin{})
+	if code(err) != CodeRefused || !strings.Contains(err.Error(), "try again in 10 s") {
+		t.Errorf("rollback within the dwell time: %v", err)
+	}
+	r.clock.Advance(4 * time.Second)
+	if _, err := r.c.Rollback(Origin{}); err == nil || !strings.Contains(err.Error(), "try again in 6 s") {
+		t.Errorf("rollback 4 s later: %v", err)
+	}
+	if st := r.c.Status(); st.DwellLeft != 6 || st.MinDwell != 10 {
+		t.Errorf("status dwell %v of %v s", st.DwellLeft, st.MinDwell)
+	}
+	r.clock.Advance(6 * time.Second)
+	if _, err := r.c.Rollback(Origin{}); err != nil {
+		t.Errorf("rollback after the dwell time: %v", err)
+	}
+	if got := r.reloads("refused"); got != 0 {
+		t.Errorf("refused promotions counted as %v refused reloads", got)
+	}
+}
+
+// TestReset resets the state and refuses malformed requests.
+func TestReset(t *testing.T) {
+	r := newCMRig(t, cmRigOptions{active: "fast", seed: 5})
+	for k := 0; k < 20; k++ {
+		r.tick()
+	}
+	for _, c := range []struct {
+		name string
+		req  ResetRequest
+		want string
+	}{
+		{"unknown state", ResetRequest{State: map[string]float64{"speed": 1}}, `state "speed": no such state`},
+		{"not finite", ResetRequest{State: map[string]float64{"position": math.Inf(1)}}, "not a finite number"},
+		{"std missing a state", ResetRequest{Std: map[string]float64{"position": 1}}, "missing velocity"},
+		{"std not positive", ResetRequest{Std: map[string]float64{"position": 1, "velocity": 0}}, "want a finite positive number"},
+		{"std and covariance", ResetRequest{Std: map[string]float64{"position": 1, "velocity": 1}, Covariance: [][]float64{{1, 0}, {0, 1}}}, "not both"},
+		// [[1, 2], [2, 1]] has eigenvalues 3 and −1.
+		{"covariance indefinite", ResetRequest{Covariance: [][]float64{{1, 2}, {2, 1}}}, "not positive definite"},
+		{"covariance shape", ResetRequest{Covariance: [][]float64{{1, 0}}}, "1 rows, want 2"},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			_, err := r.c.Reset(c.req, Origin{})
+			var ce *CommissionError
+			if !errors.As(err, &ce) || ce.Code != CodeBadRequest || !strings.Contains(ce.Error(), c.want) {
+				t.Errorf("error %v, want a bad request saying %q", err, c.want)
+			}
+		})
+	}
+	rep, err := r.c.Reset(ResetRequest{State: map[string]float64{"position": 5}, Std: map[string]float64{"position": 0.5, "velocity": 0.2}}, Origin{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if rep.State["position"] != 5 || rep.State["velocity"] != 0 {
+		t.Errorf("reply state %v", rep.State)
+	}
+	r.tick()
+	// The first step after a reset does not predict: with the fast
+	// current-form gain L, x̂ = x_reset + L·(y − C·x_reset), in deviations
+	// from the nominal (1, 0): x_reset = (4, 0).
+	l := cmSet(t, r.plant.Model, "fast").Set.Gains[0].L
+	innov := (r.y[0] - 1) - 4
+	want := []float64{1 + 4 + l.At(0, 0)*innov, 0 + l.At(1, 0)*innov}
+	for i, w := range want {
+		if got := r.est.States[i].Value; math.Abs(got-w) > 1e-12 {
+			t.Errorf("state %d after the reset: %v, want %v", i, got, w)
+		}
+	}
+	if tail := r.audit.Tail("cart", 1); len(tail) != 1 || tail[0].Action != "reset" || !strings.Contains(tail[0].Note, "position=5") {
+		t.Errorf("audit %+v", tail)
 	}
 }
