@@ -122,6 +122,9 @@ type Endpoints struct {
 	Embedded bool
 	// HTTPAddr is the address the HTTP server listens on.
 	HTTPAddr net.Addr
+	// StateDir is the directory of the embedded server's store (under
+	// StateDir/nats); empty when the daemon runs no server.
+	StateDir string
 }
 
 // setDefaults fills in the zero fields of o that have a default.
@@ -385,7 +388,7 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 			return ep, err
 		}
 		d.ns, bo.Embedded = ns, ns
-		ep.BusURL, ep.Embedded = ns.ClientURL(), true
+		ep.BusURL, ep.Embedded, ep.StateDir = ns.ClientURL(), true, dir
 	}
 
 	bus, err := Connect(bo, d.metrics, d.log)

@@ -8,7 +8,9 @@ import (
 	"io"
 	"log/slog"
 	"math"
+	"net"
 	"net/http"
+	"os"
 	"path/filepath"
 	"strings"
 	"sync"
@@ -93,6 +95,9 @@ func longMaxAge(ws []config.Wire) []config.Wire {
 	return out
 }
 
+// discardLogger logs nothing (measurements, where logging would be work).
+func discardLogger() *slog.Logger { return slog.New(slog.DiscardHandler) }
+
 // testLogger logs to the test's output.
 func testLogger(t testing.TB) *slog.Logger {
 	return slog.New(slog.NewTextHandler(t.Output(), &slog.HandlerOptions{Level: slog.LevelDebug}))
@@ -106,8 +111,8 @@ type running struct {
 	stop func() error // cancels Run and returns its error; idempotent
 }
 
-// startDaemon runs a daemon with opts (Listen, Registry, Logger and
-// StateDir filled in when zero) until the test ends or stop is called.
+// startDaemon runs a daemon with opts (Listen, Registry, Logger and Notify
+// filled in when zero) until the test ends or stop is called.
 func startDaemon(t testing.TB, opts daemon.Options) *running {
 	t.Helper()
 	if opts.Listen == "" {
@@ -119,10 +124,9 @@ func startDaemon(t testing.TB, opts daemon.Options) *running {
 	if opts.Logger == nil {
 		opts.Logger = testLogger(t)
 	}
-	if opts.StateDir == "" && opts.Bus.URL == "" {
-		opts.StateDir = t.TempDir()
-	}
-	if opts.Notify == nil {
+	if opts.Notify == nil && os.Getenv("NOTIFY_SOCKET") == "" {
+		// Not the sd_notify of the test's own service manager, if any;
+		// tests that set NOTIFY_SOCKET get the real one.
 		opts.Notify = func(string) error { return nil }
 	}
 	started := make(chan daemon.Endpoints, 1)
@@ -270,3 +274,222 @@ var _ = strings.Contains
 var _ = estimator.NewPlant
 var _ = testutil.GatherAndLint
 var _ = nats.Connect
+
+// TestNewRefuses checks the options New refuses, each with the reason it
+// gives, and that a refused daemon registered no metric.
+func TestNewRefuses(t *testing.T) {
+	good := demoPlant(t, 0)
+	renamed := func(spec daemon.PlantSpec) daemon.PlantSpec {
+		p := *spec.Plant
+		p.Path = "copy.yaml"
+		spec.Plant = &p
+		return spec
+	}
+	otherModel := demoPlant(t, 500*time.Millisecond) // its own fingerprint
+	mismatch := daemon.PlantSpec{Plant: good.Plant, Gains: otherModel.Gains}
+	noActive := func() daemon.PlantSpec {
+		g := *good.Gains
+		g.Active = "nonesuch"
+		return daemon.PlantSpec{Plant: good.Plant, Gains: &g}
+	}()
+	for _, tc := range []struct {
+		name string
+		opts daemon.Options
+		want []string
+	}{
+		{"no plant", daemon.Options{}, []string{"no plant to run"}},
+		{"no gains", daemon.Options{Plants: []daemon.PlantSpec{{Plant: good.Plant}}}, []string{"no gains file"}},
+		{"same name twice", daemon.Options{Plants: []daemon.PlantSpec{good, renamed(good)}},
+			[]string{"hotwater-loop (copy.yaml): another plant file has the same name"}},
+		{"gains of another model", daemon.Options{Plants: []daemon.PlantSpec{mismatch}}, []string{"designed for model"}},
+		{"active set missing", daemon.Options{Plants: []daemon.PlantSpec{noActive}}, []string{`active gain set "nonesuch"`}},
+		{"bad listen address", daemon.Options{Plants: []daemon.PlantSpec{good}, Listen: "localhost"}, []string{"HTTP listen address"}},
+		{"embedded port", daemon.Options{Plants: []daemon.PlantSpec{good}, EmbeddedPort: 70000}, []string{"port 70000"}},
+		{"every problem at once", daemon.Options{Plants: []daemon.PlantSpec{mismatch, noActive}, Listen: "x"},
+			[]string{"designed for model", "nonesuch", "HTTP listen address", "same name"}},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			reg := prometheus.NewPedanticRegistry()
+			tc.opts.Registry = reg
+			d, err := daemon.New(tc.opts)
+			if err == nil {
+				t.Fatalf("New returned a daemon (%v), want an error", d)
+			}
+			for _, w := range tc.want {
+				if !strings.Contains(err.Error(), w) {
+					t.Errorf("error %q does not say %q", err, w)
+				}
+			}
+			if mfs, _ := reg.Gather(); len(mfs) != 0 {
+				t.Errorf("a refused daemon registered %d metric families", len(mfs))
+			}
+		})
+	}
+
+	// Two daemons on one registry: the second is refused, not a panic.
+	reg := prometheus.NewPedanticRegistry()
+	if _, err := daemon.New(daemon.Options{Plants: []daemon.PlantSpec{good}, Registry: reg}); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := daemon.New(daemon.Options{Plants: []daemon.PlantSpec{good}, Registry: reg}); err == nil {
+		t.Error("a second daemon on the same registry was accepted")
+	}
+}
+
+// TestRunOnceAndCleanUp checks that Run runs once, and that when it returns
+// the embedded server and the HTTP server no longer listen and the temporary
+// state directory is gone.
+func TestRunOnceAndCleanUp(t *testing.T) {
+	spec := demoPlant(t, 50*time.Millisecond)
+	r := startDaemon(t, daemon.Options{Plants: []daemon.PlantSpec{spec}, EmbeddedPort: -1})
+	if r.ep.StateDir == "" {
+		t.Fatal("no state directory for the embedded server")
+	}
+	if _, err := os.Stat(filepath.Join(r.ep.StateDir, "nats")); err != nil {
+		t.Errorf("the embedded server's store: %v", err)
+	}
+	if err := r.d.Run(context.Background()); err == nil || !strings.Contains(err.Error(), "twice") {
+		t.Errorf("second Run: %v, want an error", err)
+	}
+	busAddr := strings.TrimPrefix(r.ep.BusURL, "nats://")
+	httpAddr := r.ep.HTTPAddr.String()
+	if err := r.stop(); err != nil {
+		t.Fatal(err)
+	}
+	if err := r.stop(); err != nil { // idempotent
+		t.Fatal(err)
+	}
+	for _, addr := range []string{busAddr, httpAddr} {
+		if c, err := net.DialTimeout("tcp", addr, time.Second); err == nil {
+			c.Close()
+			t.Errorf("%s still accepts connections after Run returned", addr)
+		}
+	}
+	if v, _ := gathered(t, r.reg, "surmise_ready", map[string]string{"estimator": spec.Plant.Name}); v != 0 {
+		t.Errorf("surmise_ready = %v after Run returned, want 0", v)
+	}
+	if _, err := os.Stat(r.ep.StateDir); !errors.Is(err, os.ErrNotExist) {
+		t.Errorf("temporary state directory %s after Run returned: %v, want it removed", r.ep.StateDir, err)
+	}
+}
+
+// TestNotify runs the daemon under a fake service manager (a datagram socket
+// in NOTIFY_SOCKET, as systemd sets it): READY=1 once started, WATCHDOG=1
+// while it ticks, STOPPING=1 when it stops, and nothing after.
+func TestNotify(t *testing.T) {
+	path := filepath.Join(t.TempDir(), "notify")
+	conn, err := net.ListenUnixgram("unixgram", &net.UnixAddr{Name: path, Net: "unixgram"})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close()
+	t.Setenv("NOTIFY_SOCKET", path)
+	states := make(chan string, 1000)
+	go func() {
+		buf := make([]byte, 512)
+		for {
+			n, err := conn.Read(buf)
+			if err != nil {
+				close(states)
+				return
+			}
+			states <- string(buf[:n])
+		}
+	}()
+
+	r := startDaemon(t, daemon.Options{Plants: []daemon.PlantSpec{demoPlant(t, 20*time.Millisecond)},
+		EmbeddedPort: -1, WatchdogInterval: 20 * time.Millisecond})
+	next := func() string {
+		select {
+		case s := <-states:
+			return s
+		case <-time.After(10 * time.Second):
+			t.Fatal("no notification in 10 s")
+			return ""
+		}
+	}
+	if s := next(); s != "READY=1" {
+		t.Fatalf("first notification %q, want READY=1", s)
+	}
+	for i := 0; i < 3; i++ {
+		if s := next(); s != "WATCHDOG=1" {
+			t.Fatalf("notification %q while running, want WATCHDOG=1", s)
+		}
+	}
+	if err := r.stop(); err != nil {
+		t.Fatal(err)
+	}
+	var last string
+	for len(states) > 0 {
+		last = <-states
+	}
+	if last != "STOPPING=1" {
+		t.Errorf("last notification %q, want STOPPING=1", last)
+	}
+}
+
+// TestBadSamples sends payloads that must be refused: each is counted by
+// its reason, the log says so once per signal per 10 s, and the daemon goes
+// on.
+func TestBadSamples(t *testing.T) {
+	spec := demoPlant(t, 20*time.Millisecond)
+	var log syncLog
+	r := startDaemon(t, daemon.Options{Plants: []daemon.PlantSpec{spec}, EmbeddedPort: -1,
+		Logger: slog.New(slog.NewTextHandler(&log, nil))})
+	nc, err := nats.Connect(r.ep.BusURL)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer nc.Close()
+	tank := spec.Plant.Outputs[0] // range [0, 99] in the plant file
+	for _, p := range []string{"garbage", "{\"value\": \"61\"}", "0x3d", "NaN", "1e999", "120", "-1", "61.5"} {
+		if err := nc.Publish(tank.Subject, []byte(p)); err != nil {
+			t.Fatal(err)
+		}
+	}
+	if err := nc.Flush(); err != nil {
+		t.Fatal(err)
+	}
+	labels := func(reason string) map[string]string {
+		return map[string]string{"estimator": spec.Plant.Name, "signal": tank.Signal, "reason": reason}
+	}
+	// Refusals by reason: DecodeSample's (parse, nan) and the engine's
+	// (range; nan for a number beyond a float64).
+	want := map[string]float64{"parse": 3, "nan": 2, "range": 2}
+	checkFor(t, 10*time.Second, 10*time.Millisecond, func() error {
+		for reason, n := range want {
+			if v, _ := gathered(t, r.reg, "surmise_samples_rejected_total", labels(reason)); v != n {
+				return fmt.Errorf("%s refusals: %v, want %v", reason, v, n)
+			}
+		}
+		if v, _ := gathered(t, r.reg, "surmise_samples_received_total",
+			map[string]string{"estimator": spec.Plant.Name, "signal": tank.Signal}); v != 8 {
+			return fmt.Errorf("received %v, want 8", v)
+		}
+		return nil
+	})
+	if n := strings.Count(log.String(), `msg="sample refused"`); n != 1 {
+		t.Errorf("%d log lines about refused samples, want 1 (rate limited):\n%s", n, log.String())
+	}
+	if code, body := httpGet(t, "http://"+r.ep.HTTPAddr.String()+"/healthz"); code != 200 {
+		t.Errorf("/healthz after bad samples: %d %s", code, body)
+	}
+}
+
+// syncLog is a log destination safe for concurrent writes.
+type syncLog struct {
+	mu sync.Mutex
+	b  strings.Builder
+}
+
+func (l *syncLog) Write(p []byte) (int, error) {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return l.b.Write(p)
+}
+
+func (l *syncLog) String() string {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return l.b.String()
+}

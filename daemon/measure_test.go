@@ -1,0 +1,409 @@
+package daemon_test
+
+import (
+	"fmt"
+	"math/rand/v2"
+	"os"
+	"os/exec"
+	"runtime"
+	"slices"
+	"strconv"
+	"strings"
+	"sync"
+	"syscall"
+	"testing"
+	"time"
+
+	"github.com/nats-io/nats.go"
+	"github.com/prometheus/client_golang/prometheus"
+	dto "github.com/prometheus/client_model/go"
+	"gonum.org/v1/gonum/mat"
+
+	"surmise/config"
+	"surmise/daemon"
+	"surmise/estimator"
+)
+
+// The measurements of the daemon are tests that run only when asked, for
+// the figures in reports (DEVELOPERS.md, "Measuring the daemon"):
+//
+//	SURMISE_MEASURE=10s go test -run 'TestMeasure' -v ./daemon
+//	SURMISE_MEASURE=10s SURMISE_SCALE=1000,2000 go test -run 'TestMeasureScale' -v ./daemon
+//
+// SURMISE_MEASURE is how long each measurement runs; SURMISE_SCALE lists
+// the numbers of estimators of the scale measurement (default 1000). They
+// check only what must hold on any machine; the goals are printed beside the
+// figures.
+
+// measureDuration returns SURMISE_MEASURE, or skips the test when it is not
+// set.
+func measureDuration(t *testing.T) time.Duration {
+	t.Helper()
+	v := os.Getenv("SURMISE_MEASURE")
+	if v == "" {
+		t.Skip("a measurement: set SURMISE_MEASURE=10s to run it")
+	}
+	d, err := time.ParseDuration(v)
+	if err != nil || d <= 0 {
+		t.Fatalf("SURMISE_MEASURE=%q: want a positive duration such as 10s", v)
+	}
+	return d
+}
+
+// quantile returns the q-quantile of sorted durations (nearest rank).
+func quantile(sorted []time.Duration, q float64) time.Duration {
+	if len(sorted) == 0 {
+		return 0
+	}
+	i := int(q*float64(len(sorted))+0.5) - 1
+	return sorted[min(max(i, 0), len(sorted)-1)]
+}
+
+// TestMeasureLatency measures the sample-to-estimate latency on loopback at
+// a 100 Hz tick: the demo plant at Ts = 10 ms, fed by a free-running
+// simulation at a slightly longer period, so that the phase of the samples
+// against the ticks sweeps over the whole period (a sample waits for the next
+// tick between 0 and one period). The latency of each sample is taken
+// as the daemon's metric defines it: from its receipt to the publication of
+// the estimate that used it (the in-process hook runs right after the
+// publish). Goal: p99 ≤ Ts + 0.5 ms.
+func TestMeasureLatency(t *testing.T) {
+	d := measureDuration(t)
+	const ts = 10 * time.Millisecond
+	spec := demoPlant(t, ts)
+	spec.Plant.Inputs = longMaxAge(spec.Plant.Inputs)
+	spec.Plant.Outputs = longMaxAge(spec.Plant.Outputs)
+	r := startDaemon(t, daemon.Options{Plants: []daemon.PlantSpec{spec}, EmbeddedPort: -1, Logger: discardLogger()})
+
+	var mu sync.Mutex
+	var lat, pub []time.Duration
+	var ticks, missed int
+	var lastSeq uint64
+	remove := r.d.OnEstimate(func(e *daemon.Estimator, est *daemon.Estimate, _ []byte) {
+		now := time.Now()
+		mu.Lock()
+		defer mu.Unlock()
+		ticks++
+		pub = append(pub, now.Sub(est.Time))
+		if lastSeq != 0 {
+			missed += int(est.Seq - lastSeq - 1)
+		}
+		lastSeq = est.Seq
+		for _, o := range est.Outputs {
+			if o.Used && !o.Received.IsZero() {
+				lat = append(lat, now.Sub(o.Received))
+			}
+		}
+	})
+	nc, err := nats.Connect(r.ep.BusURL)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer nc.Close()
+	stop, fed := make(chan struct{}), make(chan struct{})
+	go func() { defer close(fed); feed(nc, spec, ts*10137/10000, stop) }()
+	time.Sleep(d) // a measurement window, not a wait for a condition
+	close(stop)
+	<-fed
+	remove()
+
+	mu.Lock()
+	defer mu.Unlock()
+	if len(lat) < int(d/ts)/2 {
+		t.Fatalf("%d latencies over %v at %v, want about %d per output", len(lat), d, ts, int(d/ts))
+	}
+	slices.Sort(lat)
+	slices.Sort(pub)
+	p50, p99, worst := quantile(lat, 0.5), quantile(lat, 0.99), lat[len(lat)-1]
+	n, sum := histogram(t, r.reg, "surmise_sample_to_estimate_seconds", map[string]string{"estimator": spec.Plant.Name})
+	t.Logf("sample-to-estimate at Ts = %v over %v: %d samples, p50 %v, p99 %v, max %v (goal p99 ≤ %v); %d ticks, %d missed, due-to-published p50 %v p99 %v max %v; histogram mean %.3f ms over %d",
+		ts, d, len(lat), p50.Round(time.Microsecond), p99.Round(time.Microsecond), worst.Round(time.Microsecond),
+		ts+500*time.Microsecond, ticks, missed, quantile(pub, 0.5).Round(time.Microsecond), quantile(pub, 0.99).Round(time.Microsecond),
+		pub[len(pub)-1].Round(time.Microsecond), 1e3*sum/float64(n), n)
+	if p50 <= 0 || p50 > ts {
+		t.Errorf("median latency %v, want within one period %v (a sample waits for the next tick)", p50, ts)
+	}
+}
+
+// scaleModel is a stable random model of 10 states, 3 inputs and 2 outputs
+// (seeded), with its steady-state Kalman gains, for the scale measurement.
+func scaleModel(t *testing.T, ts time.Duration) (*estimator.Model, *estimator.GainSet) {
+	t.Helper()
+	const n, m, p = 10, 3, 2
+	rng := rand.New(rand.NewPCG(1, 2))
+	a := mat.NewDense(n, n, nil)
+	for i := 0; i < n; i++ {
+		a.Set(i, i, 0.8+0.15*rng.Float64())
+		if i+1 < n {
+			a.Set(i, i+1, 0.05*rng.Float64()) // a chain: observable from its ends
+		}
+	}
+	b := mat.NewDense(n, m, nil)
+	for i := 0; i < n; i++ {
+		b.Set(i, i%m, 0.1+0.1*rng.Float64())
+	}
+	c := mat.NewDense(p, n, nil)
+	for j := 0; j < n; j++ {
+		c.Set(0, j, rng.Float64())
+		c.Set(1, j, rng.Float64())
+	}
+	q := mat.NewSymDense(n, nil)
+	for i := 0; i < n; i++ {
+		q.SetSym(i, i, 1e-4)
+	}
+	md := &estimator.Model{
+		A: a, B: b, C: c, D: mat.NewDense(p, m, nil), Ts: ts.Seconds(),
+		Q: q, R: mat.NewSymDense(p, []float64{1e-2, 0, 0, 1e-2}),
+	}
+	for i := 0; i < n; i++ {
+		md.States = append(md.States, estimator.Signal{Name: fmt.Sprintf("x%d", i+1), Unit: "1"})
+	}
+	for i := 0; i < m; i++ {
+		md.Inputs = append(md.Inputs, estimator.Signal{Name: fmt.Sprintf("u%d", i+1), Unit: "1"})
+	}
+	for i := 0; i < p; i++ {
+		md.Outputs = append(md.Outputs, estimator.Signal{Name: fmt.Sprintf("y%d", i+1), Unit: "1"})
+	}
+	set, err := estimator.DesignKalman(md, estimator.Current, false)
+	if err != nil {
+		t.Fatal(err)
+	}
+	set.Name = "kalman-current"
+	return md, set
+}
+
+// scalePlants returns count plants on the same model, "e0000"…, each with
+// its own subjects "load.e0000.u1"….
+func scalePlants(md *estimator.Model, set *estimator.GainSet, count int, ts time.Duration) []daemon.PlantSpec {
+	fp := config.Fingerprint(md)
+	specs := make([]daemon.PlantSpec, count)
+	for k := range specs {
+		name := fmt.Sprintf("e%04d", k)
+		pl := &config.Plant{Name: name, Model: md, Gate: config.DefaultGate, Window: config.DefaultWindow,
+			Publish: "surmise." + name}
+		for _, s := range md.Inputs {
+			pl.Inputs = append(pl.Inputs, config.Wire{Signal: s.Name, Unit: s.Unit, Subject: "load." + name + "." + s.Name, MaxAge: 3 * ts})
+		}
+		for _, s := range md.Outputs {
+			pl.Outputs = append(pl.Outputs, config.Wire{Signal: s.Name, Unit: s.Unit, Subject: "load." + name + "." + s.Name, MaxAge: 3 * ts})
+		}
+		g := &config.GainsFile{Fingerprint: fp, Plant: name, Active: set.Name, Sets: []config.NamedSet{{Set: set}}}
+		specs[k] = daemon.PlantSpec{Plant: pl, Gains: g}
+	}
+	return specs
+}
+
+// cpuTime returns the user and system CPU time of this process so far.
+func cpuTime(t *testing.T) time.Duration {
+	t.Helper()
+	var ru syscall.Rusage
+	if err := syscall.Getrusage(syscall.RUSAGE_SELF, &ru); err != nil {
+		t.Fatal(err)
+	}
+	return time.Duration(ru.Utime.Nano() + ru.Stime.Nano())
+}
+
+// sumSeries sums the series of a family (a histogram's sample counts) that
+// have the label pairs given, key then value.
+func sumSeries(t *testing.T, g prometheus.Gatherer, name string, pairs ...string) float64 {
+	t.Helper()
+	mfs, err := g.Gather()
+	if err != nil {
+		t.Fatal(err)
+	}
+	return sumFamilies(mfs, name, pairs...)
+}
+
+// sumFamilies is sumSeries on families already gathered.
+func sumFamilies(mfs []*dto.MetricFamily, name string, pairs ...string) float64 {
+	s := 0.0
+	for _, mf := range mfs {
+		if mf.GetName() != name {
+			continue
+		}
+	next:
+		for _, m := range mf.GetMetric() {
+			for i := 0; i+1 < len(pairs); i += 2 {
+				found := false
+				for _, lp := range m.GetLabel() {
+					found = found || lp.GetName() == pairs[i] && lp.GetValue() == pairs[i+1]
+				}
+				if !found {
+					continue next
+				}
+			}
+			s += metricValue(m)
+		}
+	}
+	return s
+}
+
+// TestMeasureScale runs 1,000 (SURMISE_SCALE) estimators of 10 states, 3
+// inputs and 2 outputs at 10 Hz in one daemon with its embedded server, fed
+// by a load generator in a separate process (this test binary again, see
+// TestLoadGenerator) that publishes every signal at 10 Hz, and reports the
+// daemon's CPU (getrusage user + system over the window ÷ wall time: the
+// engines, the NATS client and the embedded server together) and its missed
+// ticks. Goal at 1,000: ≤ 0.5 core, no missed tick.
+func TestMeasureScale(t *testing.T) {
+	d := measureDuration(t)
+	counts := []int{1000}
+	if v := os.Getenv("SURMISE_SCALE"); v != "" {
+		counts = nil
+		for _, f := range strings.Split(v, ",") {
+			n, err := strconv.Atoi(strings.TrimSpace(f))
+			if err != nil || n < 1 {
+				t.Fatalf("SURMISE_SCALE=%q: want estimator counts such as 1000,2000", v)
+			}
+			counts = append(counts, n)
+		}
+	}
+	const ts = 100 * time.Millisecond
+	md, set := scaleModel(t, ts)
+	for _, count := range counts {
+		t.Run(strconv.Itoa(count), func(t *testing.T) { measureScale(t, md, set, count, ts, d) })
+	}
+}
+
+func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, count int, ts, d time.Duration) {
+	reg := prometheus.NewPedanticRegistry()
+	r := startDaemon(t, daemon.Options{Plants: scalePlants(md, set, count, ts), EmbeddedPort: -1,
+		Registry: reg, Logger: discardLogger()})
+
+	gen := exec.Command(os.Args[0], "-test.run=^TestLoadGenerator$", "-test.v")
+	gen.Env = append(os.Environ(), fmt.Sprintf("SURMISE_LOADGEN=%s,%d,%v", r.ep.BusURL, count, ts))
+	gen.Stdout, gen.Stderr = t.Output(), t.Output()
+	if err := gen.Start(); err != nil {
+		t.Fatal(err)
+	}
+	defer func() { gen.Process.Kill(); gen.Wait() }()
+
+	// Wait until every estimator has had ten periods of samples, then
+	// measure.
+	checkFor(t, 60*time.Second, 500*time.Millisecond, func() error {
+		if n := sumSeries(t, reg, "surmise_samples_received_total"); n < float64(50*count) {
+			return fmt.Errorf("%v samples received, want %d", n, 50*count)
+		}
+		return nil
+	})
+	// Counters are read from one Gather on each side of the window; the
+	// window's own CPU and wall time exclude them (a Gather of this many
+	// series takes a while).
+	gather := func() ([]*dto.MetricFamily, time.Duration) {
+		start := time.Now()
+		mfs, err := reg.Gather()
+		if err != nil {
+			t.Fatal(err)
+		}
+		return mfs, time.Since(start)
+	}
+	var ms0, ms1 runtime.MemStats
+	runtime.ReadMemStats(&ms0)
+	before, took := gather()
+	series := 0
+	for _, mf := range before {
+		series += len(mf.GetMetric())
+	}
+	cpu0, wall0 := cpuTime(t), time.Now()
+	time.Sleep(d) // the measurement window
+	cpu1, wall1 := cpuTime(t), time.Now()
+	after, _ := gather()
+	runtime.ReadMemStats(&ms1)
+	delta := func(name string, pairs ...string) float64 {
+		return sumFamilies(after, name, pairs...) - sumFamilies(before, name, pairs...)
+	}
+	// The gathers are a little apart from the window: scale the counts to it.
+	span := wall1.Sub(wall0) + took
+	ticks, over, recv := delta("surmise_ticks_total"), delta("surmise_tick_overruns_total"), delta("surmise_samples_received_total")
+	var statuses []string
+	for _, st := range []string{"tracking", "coasting", "stale-input", "suspect"} {
+		statuses = append(statuses, fmt.Sprintf("%s %.0f", st, delta("surmise_ticks_total", "status", st)))
+	}
+
+	wall := wall1.Sub(wall0)
+	cores := (cpu1 - cpu0).Seconds() / wall.Seconds()
+	want := float64(count) * span.Seconds() / ts.Seconds()
+	t.Logf("%d estimators (10 states, 3 inputs, 2 outputs) at %v for %v: CPU %.3f cores (goal ≤ 0.5 at 1000); between the two gathers (%v): ticks %.0f run and %.0f missed of about %.0f due, samples %.0f/s, ticks by status: %s; heap %.1f MiB, %d goroutines, GC cycles %d; registry %d series, one Gather %v",
+		count, ts, wall.Round(time.Millisecond), cores, span.Round(time.Millisecond), ticks, over, want, recv/span.Seconds(), strings.Join(statuses, ", "),
+		float64(ms1.HeapAlloc)/(1<<20), runtime.NumGoroutine(), ms1.NumGC-ms0.NumGC, series, took.Round(time.Millisecond))
+	// Every due tick is run or counted missed (the window's edges blur the
+	// count by a tick per estimator or so).
+	if ticks+over < 0.9*want {
+		t.Errorf("%.0f ticks run and %.0f missed of about %.0f due: ticks went unaccounted", ticks, over, want)
+	}
+	if err := r.stop(); err != nil {
+		t.Fatal(err)
+	}
+}
+
+// TestLoadGenerator is the load generator of TestMeasureScale, run in a
+// process of its own: with SURMISE_LOADGEN=url,count,period it simulates
+// count plants of the scale model (seeded, inputs held at a random level
+// each) and publishes a bare-number sample of every signal of each once per
+// period, the plants spread evenly over the period in 10 slices, until it is
+// killed.
+func TestLoadGenerator(t *testing.T) {
+	v := os.Getenv("SURMISE_LOADGEN")
+	if v == "" {
+		t.Skip("the load generator of TestMeasureScale, run by it")
+	}
+	f := strings.Split(v, ",")
+	if len(f) != 3 {
+		t.Fatalf("SURMISE_LOADGEN=%q", v)
+	}
+	count, err := strconv.Atoi(f[1])
+	if err != nil {
+		t.Fatal(err)
+	}
+	period, err := time.ParseDuration(f[2])
+	if err != nil {
+		t.Fatal(err)
+	}
+	nc, err := nats.Connect(f[0])
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer nc.Close()
+	md, _ := scaleModel(t, period)
+	type plant struct {
+		sim      *estimator.Plant
+		u, y     []float64
+		subjects []string
+	}
+	rng := rand.New(rand.NewPCG(3, 4))
+	plants := make([]plant, count)
+	for k := range plants {
+		p := &plants[k]
+		p.sim = estimator.NewPlant(md, uint64(k), nil)
+		p.u = []float64{rng.NormFloat64(), rng.NormFloat64(), rng.NormFloat64()}
+		p.y = make([]float64, 2)
+		for _, s := range []string{"u1", "u2", "u3", "y1", "y2"} {
+			p.subjects = append(p.subjects, fmt.Sprintf("load.e%04d.%s", k, s))
+		}
+	}
+	const parts = 10
+	tick := time.NewTicker(period / parts)
+	defer tick.Stop()
+	var buf []byte
+	for i := 0; ; i++ {
+		<-tick.C
+		part := i % parts
+		for k := part * count / parts; k < (part+1)*count/parts; k++ {
+			p := &plants[k]
+			p.sim.Step(p.u)
+			p.sim.OutputTo(p.y)
+			for j, subj := range p.subjects {
+				var x float64
+				if j < len(p.u) {
+					x = p.u[j]
+				} else {
+					x = p.y[j-len(p.u)]
+				}
+				buf = strconv.AppendFloat(buf[:0], x, 'g', -1, 64)
+				if err := nc.Publish(subj, buf); err != nil {
+					t.Fatal(err)
+				}
+			}
+		}
+	}
+}
