@@ -32,6 +32,7 @@ type env struct {
 func verbs() []verb {
 	return []verb{
 		{"check", "report on a plant's model, its observability and its gain sets", runCheck},
+		{"ctl", "ask a running daemon for status, load gains, promote, roll back, reset", runCtl},
 		{"design", "design observer or Kalman gains and write the gains file", runDesign},
 		{"run", "run the estimators of plant files on the NATS bus (the daemon)", runRun},
 		{"version", "print the version and build information", runVersion},

@@ -1,0 +1,401 @@
+package main
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"math"
+	"os"
+	"os/user"
+	"slices"
+	"sort"
+	"strconv"
+	"strings"
+	"text/tabwriter"
+	"time"
+
+	"github.com/nats-io/nats.go"
+	"github.com/nats-io/nats.go/micro"
+
+	"surmise/daemon"
+)
+
+const ctlSynopsis = `[flags] ESTIMATOR VERB [FILE]
+
+Talks to the control service of a running daemon (surmise run) over NATS,
+on the subjects surmise.control.ESTIMATOR.VERB.
+
+Verbs:
+  status              the active, candidate and previous gain sets, the last
+                      reload and why it was refused, the latest tick of both
+                      lanes (status, windowed NIS and its band, states), the
+                      minimum dwell time left and the latest audit entries
+  load FILE           load a gains file (validated against the running model;
+                      the active set swaps with the state carried over, the
+                      candidate starts in shadow); --set NAME runs another set,
+                      --candidate NAME another candidate, --no-candidate none.
+                      The file on disk is not changed: a restart, SIGHUP or a
+                      change of that file loads it again.
+  promote             make the candidate active, keeping the active state
+                      (keep-state: the estimate does not jump); with
+                      --adopt-state take the candidate's own state: the first
+                      call shows the jump and changes nothing, --yes applies it
+  rollback            make the previous active set active again
+  reset               restart the state at the operating point, or at
+                      --state NAME=VALUE (repeat; others at the operating
+                      point) with --std NAME=VALUE for every state
+
+Exit status: 0 done (or shown), 1 refused or no answer, 2 usage.`
+
+// ctlList is a flag that may be repeated.
+type ctlList []string
+
+func (l *ctlList) String() string     { return strings.Join(*l, " ") }
+func (l *ctlList) Set(v string) error { *l = append(*l, v); return nil }
+
+// ctlFlags are the flags of `surmise ctl`.
+type ctlFlags struct {
+	nats, creds, tlsCA string
+	timeout            time.Duration
+	json               bool
+	set, candidate     string
+	noCandidate        bool
+	adopt, yes         bool
+	state, std         ctlList
+}
+
+func runCtl(ctx context.Context, e *env, args []string) error {
+	flags := newFlags(e, "ctl", ctlSynopsis)
+	var f ctlFlags
+	flags.StringVar(&f.nats, "nats", "nats://127.0.0.1:4222", "NATS server `URL`s, comma-separated (the default is where surmise run's embedded server listens)")
+	flags.StringVar(&f.creds, "creds", "", "NATS user credentials `FILE` (JWT and seed)")
+	flags.StringVar(&f.tlsCA, "tls-ca", "", "PEM `FILE` of the CAs that sign the NATS server's certificate")
+	flags.DurationVar(&f.timeout, "timeout", 5*time.Second, "how long to wait for the connection and for the reply")
+	flags.BoolVar(&f.json, "json", false, "print the daemon's JSON reply as it came")
+	flags.StringVar(&f.set, "set", "", "load: run the set `NAME` instead of the file's active set")
+	flags.StringVar(&f.candidate, "candidate", "", "load: run the set `NAME` in shadow instead of the file's candidate")
+	flags.BoolVar(&f.noCandidate, "no-candidate", false, "load: run no candidate")
+	flags.BoolVar(&f.adopt, "adopt-state", false, "promote: take the candidate's state (the estimate jumps) instead of keeping the active state")
+	flags.BoolVar(&f.yes, "yes", false, "promote --adopt-state: apply it (without, the jump is shown and nothing changes)")
+	flags.Var(&f.state, "state", "reset: `NAME=VALUE`, an absolute state value (repeat)")
+	flags.Var(&f.std, "std", "reset: `NAME=VALUE`, a state's standard deviation (repeat, for every state)")
+	pos, err := parseArgs(flags, args)
+	if err != nil {
+		return err
+	}
+	if len(pos) < 2 {
+		return usageError("want an estimator and a verb (status, load, promote, rollback, reset)")
+	}
+	name, verb, rest := pos[0], pos[1], pos[2:]
+	explicit := map[string]bool{}
+	flags.Visit(func(fl *flag.Flag) { explicit[fl.Name] = true })
+	allowed := map[string][]string{
+		daemon.VerbStatus:   nil,
+		daemon.VerbLoad:     {"set", "candidate", "no-candidate"},
+		daemon.VerbPromote:  {"adopt-state", "yes"},
+		daemon.VerbRollback: nil,
+		daemon.VerbReset:    {"state", "std"},
+	}
+	own, known := allowed[verb]
+	if !known {
+		return usageError("unknown verb %q: want status, load, promote, rollback or reset", verb)
+	}
+	for _, fl := range []string{"set", "candidate", "no-candidate", "adopt-state", "yes", "state", "std"} {
+		if explicit[fl] && !slices.Contains(own, fl) {
+			return usageError("--%s does not go with %s", fl, verb)
+		}
+	}
+	if f.yes && !f.adopt {
+		return usageError("--yes confirms --adopt-state; a keep-state promotion needs no confirmation")
+	}
+	if f.noCandidate && f.candidate != "" {
+		return usageError("--candidate and --no-candidate exclude each other")
+	}
+	wantFile := verb == daemon.VerbLoad
+	switch {
+	case wantFile && len(rest) != 1:
+		return usageError("load wants one gains file")
+	case !wantFile && len(rest) != 0:
+		return usageError("%s takes no argument, got %q", verb, strings.Join(rest, " "))
+	}
+
+	msg := &nats.Msg{Subject: daemon.ControlSubject(name, verb), Header: nats.Header{}}
+	msg.Header.Set(daemon.HeaderOperator, ctlOperator())
+	switch verb {
+	case daemon.VerbLoad:
+		data, err := os.ReadFile(rest[0])
+		if err != nil {
+			return fmt.Errorf("reading the gains file: %w", err)
+		}
+		msg.Data = data
+		if f.set != "" {
+			msg.Header.Set(daemon.HeaderSet, f.set)
+		}
+		switch {
+		case f.noCandidate:
+			msg.Header.Set(daemon.HeaderCandidate, daemon.NoCandidate)
+		case f.candidate != "":
+			msg.Header.Set(daemon.HeaderCandidate, f.candidate)
+		}
+	case daemon.VerbPromote:
+		req := daemon.PromoteRequest{Transfer: daemon.KeepState}
+		if f.adopt {
+			req.Transfer, req.Confirm = daemon.AdoptState, f.yes
+		}
+		msg.Data, _ = json.Marshal(req)
+	case daemon.VerbReset:
+		req := daemon.ResetRequest{}
+		if req.State, err = ctlNameValues("--state", f.state); err != nil {
+			return err
+		}
+		if req.Std, err = ctlNameValues("--std", f.std); err != nil {
+			return err
+		}
+		msg.Data, _ = json.Marshal(req)
+	}
+
+	reply, err := ctlRequest(ctx, f, msg)
+	if err != nil {
+		return err
+	}
+	if code := reply.Header.Get(micro.ErrorCodeHeader); code != "" {
+		var ce daemon.ControlError
+		if json.Unmarshal(reply.Data, &ce) != nil || ce.Error == "" {
+			ce = daemon.ControlError{Code: code, Error: reply.Header.Get(micro.ErrorHeader)}
+		}
+		if f.json {
+			fmt.Fprintln(e.stdout, strings.TrimSpace(string(reply.Data)))
+		}
+		text := fmt.Sprintf("%s %s refused (%s): %s", name, verb, ce.Code, ce.Error)
+		for _, d := range ce.Detail {
+			text += "\n  " + d
+		}
+		return &exitError{code: 1, msg: text}
+	}
+	if f.json {
+		fmt.Fprintln(e.stdout, strings.TrimSpace(string(reply.Data)))
+		return nil
+	}
+	return ctlPrintReply(e.stdout, verb, reply.Data)
+}
+
+// ctlOperator is who `surmise ctl` says runs it, user@host; the daemon records
+// it as claimed, unchecked.
+func ctlOperator() string {
+	name := os.Getenv("USER")
+	if u, err := user.Current(); err == nil && u.Username != "" {
+		name = u.Username
+	}
+	host, _ := os.Hostname()
+	return name + "@" + host
+}
+
+// ctlNameValues parses NAME=VALUE arguments.
+func ctlNameValues(flagName string, list []string) (map[string]float64, error) {
+	if len(list) == 0 {
+		return nil, nil
+	}
+	out := map[string]float64{}
+	for _, kv := range list {
+		k, v, ok := strings.Cut(kv, "=")
+		if !ok || k == "" {
+			return nil, usageError("%s %q: want NAME=VALUE", flagName, kv)
+		}
+		x, err := strconv.ParseFloat(v, 64)
+		if err != nil || math.IsNaN(x) || math.IsInf(x, 0) {
+			return nil, usageError("%s %q: %q is not a finite number", flagName, kv, v)
+		}
+		if _, dup := out[k]; dup {
+			return nil, usageError("%s: %s given twice", flagName, k)
+		}
+		out[k] = x
+	}
+	return out, nil
+}
+
+// ctlRequest connects, sends the request and waits for the reply.
+func ctlRequest(ctx context.Context, f ctlFlags, msg *nats.Msg) (*nats.Msg, error) {
+	opts := []nats.Option{nats.Name("surmise ctl"), nats.Timeout(f.timeout), nats.NoReconnect()}
+	if f.creds != "" {
+		opts = append(opts, nats.UserCredentials(f.creds))
+	}
+	if f.tlsCA != "" {
+		opts = append(opts, nats.RootCAs(f.tlsCA))
+	}
+	nc, err := nats.Connect(f.nats, opts...)
+	if err != nil {
+		return nil, &exitError{code: 1, msg: fmt.Sprintf("cannot reach the bus at %s: %v", f.nats, err)}
+	}
+	defer nc.Close()
+	ctx, cancel := context.WithTimeout(ctx, f.timeout)
+	defer cancel()
+	reply, err := nc.RequestMsgWithContext(ctx, msg)
+	switch {
+	case errors.Is(err, nats.ErrNoResponders):
+		return nil, &exitError{code: 1, msg: fmt.Sprintf("no daemon answers on %s (is surmise run up on %s, and is the estimator's name right?)", msg.Subject, f.nats)}
+	case errors.Is(err, context.DeadlineExceeded):
+		return nil, &exitError{code: 1, msg: fmt.Sprintf("no reply on %s within %v", msg.Subject, f.timeout)}
+	case err != nil:
+		return nil, &exitError{code: 1, msg: fmt.Sprintf("%s: %v", msg.Subject, err)}
+	}
+	return reply, nil
+}
+
+// ctlPrintReply prints a reply for people.
+func ctlPrintReply(w io.Writer, verb string, data []byte) error {
+	decode := func(v any) error {
+		if err := json.Unmarshal(data, v); err != nil {
+			return fmt.Errorf("the daemon's reply is not what this version understands: %w", err)
+		}
+		return nil
+	}
+	switch verb {
+	case daemon.VerbStatus:
+		var r daemon.StatusReply
+		if err := decode(&r); err != nil {
+			return err
+		}
+		ctlPrintStatus(w, &r)
+	case daemon.VerbLoad:
+		var r daemon.LoadReply
+		if err := decode(&r); err != nil {
+			return err
+		}
+		fmt.Fprintf(w, "loaded (sha256 %s): %s\n", ctlShort(r.SHA256), r.Note)
+	case daemon.VerbPromote:
+		var r daemon.PromoteReply
+		if err := decode(&r); err != nil {
+			return err
+		}
+		if r.Jump != nil {
+			ctlPrintJump(w, r.Jump)
+		}
+		if !r.Applied {
+			fmt.Fprintf(w, "not applied: adopting %s's state moves the estimate by %s (above); run again with --yes to apply\n", r.Active.Name, fnum(r.Jump.Norm))
+			return nil
+		}
+		fmt.Fprintf(w, "promoted (%s): %s\n", r.Transfer, r.Note)
+	case daemon.VerbRollback:
+		var r daemon.RollbackReply
+		if err := decode(&r); err != nil {
+			return err
+		}
+		fmt.Fprintf(w, "rolled back: %s\n", r.Note)
+	case daemon.VerbReset:
+		var r daemon.ResetReply
+		if err := decode(&r); err != nil {
+			return err
+		}
+		names := make([]string, 0, len(r.State))
+		for n := range r.State {
+			names = append(names, n)
+		}
+		sort.Strings(names)
+		parts := make([]string, len(names))
+		for i, n := range names {
+			parts[i] = n + "=" + fnum(r.State[n])
+		}
+		fmt.Fprintf(w, "reset: %s (%s)\n", r.Note, strings.Join(parts, " "))
+	}
+	return nil
+}
+
+func ctlShort(sum string) string {
+	if len(sum) > 12 {
+		return sum[:12]
+	}
+	return sum
+}
+
+func ctlSet(r *daemon.SetRef) string {
+	if r == nil {
+		return "—"
+	}
+	return r.Name + " (" + r.Form + ")"
+}
+
+func ctlNum(n daemon.Number) string {
+	if math.IsNaN(float64(n)) {
+		return "—"
+	}
+	return fnum(float64(n))
+}
+
+func ctlPrintStatus(w io.Writer, r *daemon.StatusReply) {
+	tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
+	fmt.Fprintf(tw, "estimator\t%s\n", r.Estimator)
+	fmt.Fprintf(tw, "model\t%s\n", r.Model)
+	fmt.Fprintf(tw, "active\t%s\n", ctlSet(&r.Active))
+	fmt.Fprintf(tw, "candidate\t%s\n", ctlSet(r.Candidate))
+	fmt.Fprintf(tw, "previous\t%s\n", ctlSet(r.Previous))
+	fmt.Fprintf(tw, "gains from\t%s (sha256 %s)\n", r.Source, ctlShort(r.SHA256))
+	if lr := r.LastReload; lr != nil {
+		fmt.Fprintf(tw, "last reload\t%s %s by %s: %s\n", lr.Time.Local().Format(time.DateTime), lr.Result, lr.Trigger, lr.Reason)
+		for _, d := range lr.Detail {
+			fmt.Fprintf(tw, "\t  %s\n", d)
+		}
+	} else {
+		fmt.Fprintf(tw, "last reload\tnone since start\n")
+	}
+	if r.RestartNeeded != "" {
+		fmt.Fprintf(tw, "restart\t%s\n", r.RestartNeeded)
+	}
+	dwell := fmt.Sprintf("%s s between swaps", fnum(r.MinDwell))
+	if r.DwellLeft > 0 {
+		dwell += fmt.Sprintf(", %s s left", fnum(r.DwellLeft))
+	}
+	fmt.Fprintf(tw, "dwell\t%s\n", dwell)
+	for _, l := range []struct {
+		what string
+		s    *daemon.LaneStatus
+	}{{"tick", r.Tick}, {"shadow", r.Shadow}} {
+		if l.s == nil {
+			continue
+		}
+		fmt.Fprintf(tw, "%s\t#%d %s %s: %s, NIS window mean %s in [%s, %s]\n", l.what, l.s.Seq, l.s.Time.Local().Format(time.TimeOnly), l.s.Gains,
+			l.s.Status, ctlNum(l.s.NISMean), ctlNum(l.s.NISBand[0]), ctlNum(l.s.NISBand[1]))
+	}
+	tw.Flush()
+	if r.Tick != nil {
+		fmt.Fprintln(w, "\nstates")
+		tw = tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
+		head := "  name\tunit\t" + r.Tick.Gains + "\t±"
+		if r.Shadow != nil {
+			head += "\t" + r.Shadow.Gains + "\t±"
+		}
+		fmt.Fprintln(tw, head)
+		for i, s := range r.Tick.States {
+			line := fmt.Sprintf("  %s\t%s\t%s\t%s", s.Name, s.Unit, ctlNum(s.Value), ctlNum(s.Std))
+			if r.Shadow != nil && i < len(r.Shadow.States) {
+				line += fmt.Sprintf("\t%s\t%s", ctlNum(r.Shadow.States[i].Value), ctlNum(r.Shadow.States[i].Std))
+			}
+			fmt.Fprintln(tw, line)
+		}
+		tw.Flush()
+	}
+	if len(r.Audit) > 0 {
+		fmt.Fprintln(w, "\naudit (latest last)")
+		tw = tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
+		for _, a := range r.Audit {
+			who := a.Origin
+			if a.ClaimedBy != "" {
+				who += " (says " + a.ClaimedBy + ")"
+			}
+			fmt.Fprintf(tw, "  %s\t%s\t%s\t%s → %s\t%s\n", a.Time.Local().Format(time.DateTime), a.Action, a.Trigger, a.OldActive.Name, a.NewActive.Name, who)
+		}
+		tw.Flush()
+	}
+}
+
+func ctlPrintJump(w io.Writer, j *daemon.Jump) {
+	fmt.Fprintf(w, "jump at tick #%d: ‖x̂_candidate − x̂_active‖ = %s\n", j.Seq, fnum(j.Norm))
+	tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
+	fmt.Fprintln(tw, "  state\tunit\tactive\tcandidate\tdifference\tin active σ")
+	for _, s := range j.States {
+		fmt.Fprintf(tw, "  %s\t%s\t%s\t%s\t%s\t%s\n", s.Name, s.Unit, fnum(s.Active), fnum(s.Candidate), fnum(s.Difference), ctlNum(s.Sigmas))
+	}
+	tw.Flush()
+}
