@@ -35,6 +35,7 @@ func verbs() []verb {
 		{"ctl", "ask a running daemon for status, load gains, promote, roll back, reset", runCtl},
 		{"design", "design observer or Kalman gains and write the gains file", runDesign},
 		{"run", "run the estimators of plant files on the NATS bus (the daemon)", runRun},
+		{"simulate", "publish a simulated plant's signals and true states, with scripted events", runSimulate},
 		{"version", "print the version and build information", runVersion},
 	}
 }

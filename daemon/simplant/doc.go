@@ -80,7 +80,12 @@
 //
 // # The true initial state
 //
-// The plant starts from the plant file's initial state plus a draw from its
-// initial covariance (when it has one) — the prior the estimator itself
-// assumes — so an estimator has something to converge to.
+// The plant starts from the plant file's initial state (by default its
+// operating point), where the estimator starts too. With
+// Options.DrawInitial it starts from a draw from the prior the estimator
+// assumes — the initial state plus a draw from the initial covariance —
+// so the estimator has something to converge to. (A fixed gain set judges
+// its innovations by the steady-state S stored with it, so while the
+// estimate converges from a distant start its outlier gate may reject the
+// measurements for a while: rehearse that on purpose.)
 package simplant

@@ -8,6 +8,7 @@ import (
 	"strconv"
 	"time"
 
+	"surmise/daemon"
 	"surmise/daemon/recording"
 )
 
@@ -143,8 +144,9 @@ func WriteRecording(w *recording.Writer, st *Stream, clk Clock, length time.Dura
 }
 
 // TruthColumn is the column name of the true value of a state in a CSV
-// written by WriteCSV: "truth.<state>".
-func TruthColumn(state string) string { return "truth." + state }
+// written by WriteCSV: "truth.<state>" (daemon.TruthColumn, which a replay
+// uses to find them).
+func TruthColumn(state string) string { return daemon.TruthColumn(state) }
 
 // WriteCSV writes the samples before length (plant time) of sim as a
 // historian-style CSV: a "time" column (RFC 3339 with nanoseconds, UTC, the

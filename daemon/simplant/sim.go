@@ -9,6 +9,7 @@ import (
 	"gonum.org/v1/gonum/mat"
 
 	"surmise/config"
+	"surmise/daemon"
 	"surmise/estimator"
 )
 
@@ -52,26 +53,27 @@ func (m *Message) Arrival() time.Duration { return m.At + m.Delay }
 
 // TruthSubject returns the subject the true value of state is published on:
 // "<publish prefix>.truth.<state>".
+// It is daemon.TruthSubject, which a replay uses to find them.
 func TruthSubject(plant *config.Plant, state string) string {
-	prefix := plant.Publish
-	if prefix == "" {
-		prefix = config.PublishRoot + "." + plant.Name
-	}
-	return prefix + ".truth." + state
+	return daemon.TruthSubject(plant, state)
 }
 
 // Options are the optional settings of a Sim. The zero value is seed 0 and
-// the initial state drawn from the plant's prior.
+// the plant file's initial state.
 type Options struct {
 	// Seed seeds the process and measurement noise (as estimator.NewPlant
 	// does), the draw of the initial state, the phase of each PRBS and the
 	// jitter delays, each from a generator of its own: the noise of a run is
 	// the same whatever the scenario.
 	Seed uint64
-	// X0 is the true initial state, absolute. Nil means the plant's initial
-	// state plus a draw from its initial covariance (the initial state alone
-	// when the plant file gives no covariance).
+	// X0 is the true initial state, absolute. Nil means the plant file's
+	// initial state (by default the operating point), or with DrawInitial
+	// that plus a draw from its initial covariance.
 	X0 []float64
+	// DrawInitial draws the true initial state from the prior the estimator
+	// assumes — the plant file's initial state and covariance — so that
+	// the estimate has something to converge to.
+	DrawInitial bool
 }
 
 // Sim is a simulated plant running a scenario. It is pure: Step computes the
@@ -138,9 +140,12 @@ func New(plant *config.Plant, sc *Scenario, opts Options) (*Sim, error) {
 		return nil, fmt.Errorf("simplant: sample time %v s is not a positive duration", md.Ts)
 	}
 	x0 := opts.X0
-	if x0 == nil {
+	switch {
+	case x0 == nil && opts.DrawInitial:
 		x0 = initialDraw(plant, opts.Seed)
-	} else if len(x0) != n {
+	case x0 == nil:
+		x0 = plant.Initial // nil: the operating point
+	case len(x0) != n:
 		panic(fmt.Sprintf("simplant: New: X0 has %d entries, want %d", len(x0), n))
 	}
 	s := &Sim{
