@@ -1,0 +1,245 @@
+package daemon
+
+import (
+	"encoding/json"
+	"math"
+	"os"
+	"path/filepath"
+	"slices"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/nats-io/nats-server/v2/server"
+	"github.com/nats-io/nats.go"
+	"github.com/nats-io/nats.go/micro"
+)
+
+// ctlRig is a cart rig whose commissioner answers on a real NATS server
+// (in-process, random loopback port).
+type ctlRig struct {
+	*cmRig
+	nc *nats.Conn
+}
+
+func newCtlRig(t *testing.T) *ctlRig {
+	r := &ctlRig{cmRig: newCMRig(t, cmRigOptions{active: "slow", candidate: "kalman", dwell: -1})}
+	ns, err := StartEmbedded(EmbeddedOptions{Port: -1, StoreDir: t.TempDir()})
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { ns.Shutdown(); ns.WaitForShutdown() })
+	svcConn, err := nats.Connect(ns.ClientURL())
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(svcConn.Close)
+	svc, err := StartControl(svcConn, []*Commissioner{r.c})
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { svc.Stop() })
+	r.nc, err = nats.Connect(ns.ClientURL())
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(r.nc.Close)
+	return r
+}
+
+// request sends a control request and returns the reply's error code ("" for
+// none) and body.
+func (r *ctlRig) request(t *testing.T, verb string, body []byte, hdr map[string]string) (code string, data []byte) {
+	t.Helper()
+	msg := &nats.Msg{Subject: ControlSubject("cart", verb), Data: body, Header: nats.Header{}}
+	for k, v := range hdr {
+		msg.Header.Set(k, v)
+	}
+	reply, err := r.nc.RequestMsg(msg, 10*time.Second)
+	if err != nil {
+		t.Fatalf("%s: %v", verb, err)
+	}
+	return reply.Header.Get(micro.ErrorCodeHeader), reply.Data
+}
+
+// TestControlService runs every verb over the bus, the accepted requests and
+// the refused ones with their codes.
+func TestControlService(t *testing.T) {
+	r := newCtlRig(t)
+	r.tick()
+	fp := "sha256:" + strings.Repeat("0", 64)
+	steps := []struct {
+		name, verb string
+		body       string
+		hdr        map[string]string
+		code       string // "" accepted
+		want       string // in the reply body
+	}{
+		{"status", VerbStatus, "", nil, "", `"active":{"name":"slow","form":"prediction"`},
+		{"status shows the candidate", VerbStatus, "", nil, "", `"candidate":{"name":"kalman","form":"kalman"`},
+		{"load nothing", VerbLoad, " \n", nil, CodeBadRequest, "the request body must be a gains file"},
+		{"load an invalid file", VerbLoad, string(cmBadGains(fp, "0.5", "0.1", "0.02")), nil, CodeInvalid, `control request:1:14: fingerprint:`},
+		{"load, another active set", VerbLoad, string(cmGains(t, r.plant, "slow", "kalman", "slow", "fast", "kalman")),
+			map[string]string{HeaderSet: "fast"}, "", `"note":"active set slow → fast, state carried over; candidate kalman keeps running"`},
+		{"load, no candidate", VerbLoad, string(cmGains(t, r.plant, "fast", "kalman", "slow", "fast", "kalman")),
+			map[string]string{HeaderCandidate: NoCandidate}, "", `shadow stopped`},
+		{"promote with no candidate", VerbPromote, "", nil, CodeRefused, "nothing to promote"},
+		{"promote, transfer not a string", VerbPromote, `{"transfer": 3}`, nil, CodeBadRequest, "request body"},
+		{"promote, unknown field", VerbPromote, `{"confirm": true, "force": true}`, nil, CodeBadRequest, `unknown field \"force\"`},
+		{"promote, two values", VerbPromote, `{} {}`, nil, CodeBadRequest, "more than one JSON value"},
+		{"rollback", VerbRollback, `{}`, map[string]string{HeaderOperator: "ann@bench"}, "", `"active":{"name":"slow"`},
+		{"reset, unknown state", VerbReset, `{"state": {"nope": 1}}`, nil, CodeBadRequest, `state \"nope\": no such state`},
+		{"reset", VerbReset, `{"state": {"position": 2}, "std": {"position": 0.1, "velocity": 0.1}}`, nil, "", `"state":{"position":2,"velocity":0}`},
+	}
+	for _, s := range steps {
+		code, data := r.request(t, s.verb, []byte(s.body), s.hdr)
+		if code != s.code || !strings.Contains(string(data), s.want) {
+			t.Errorf("%s: code %q, reply %s; want code %q and %s", s.name, code, data, s.code, s.want)
+		}
+		if code != "" {
+			var ce ControlError
+			if err := json.Unmarshal(data, &ce); err != nil || ce.Code != code || ce.Error == "" {
+				t.Errorf("%s: error body %s is not a ControlError with code %s", s.name, data, code)
+			}
+		}
+	}
+	// Who asked: the reply subject the bus carried, and the claim.
+	var rollback *AuditEntry
+	for _, a := range r.audit.Tail("cart", 10) {
+		if a.Action == "rollback" {
+			rollback = &a
+		}
+	}
+	if rollback == nil || !strings.HasPrefix(rollback.Origin, "reply-subject: _INBOX.") || rollback.ClaimedBy != "ann@bench" {
+		t.Errorf("rollback audit %+v", rollback)
+	}
+}
+
+// TestControlDiscovery asks $SRV.INFO for the service: one endpoint per verb
+// of each estimator, on surmise.control.<estimator>.<verb>, no queue group.
+func TestControlDiscovery(t *testing.T) {
+	r := newCtlRig(t)
+	reply, err := r.nc.Request("$SRV.INFO."+ControlService, nil, 10*time.Second)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var info micro.Info
+	if err := json.Unmarshal(reply.Data, &info); err != nil {
+		t.Fatal(err)
+	}
+	var subjects []string
+	for _, ep := range info.Endpoints {
+		subjects = append(subjects, ep.Subject)
+		if ep.Metadata["estimator"] != "cart" || ep.QueueGroup != "" {
+			t.Errorf("endpoint %+v", ep)
+		}
+	}
+	slices.Sort(subjects)
+	want := []string{"surmise.control.cart.load", "surmise.control.cart.promote", "surmise.control.cart.reset",
+		"surmise.control.cart.rollback", "surmise.control.cart.status"}
+	if !slices.Equal(subjects, want) || info.Name != ControlService || info.Version != ControlVersion {
+		t.Errorf("info %s: subjects %v", reply.Data, subjects)
+	}
+}
+
+// TestRequestOriginImport sends a request from another account through a
+// service import that shares the requester's identity: the server adds
+// Nats-Request-Info, and the origin recorded is that identity, not a reply
+// subject a client could pick.
+func TestRequestOriginImport(t *testing.T) {
+	dir := t.TempDir()
+	conf := filepath.Join(dir, "accounts.conf")
+	if err := os.WriteFile(conf, []byte(`
+listen: 127.0.0.1:-1
+accounts {
+  PLANT { users: [{user: daemon, password: d}], exports: [{service: "surmise.control.>"}] }
+  ENG { users: [{user: ann, password: a}], imports: [{service: {account: PLANT, subject: "surmise.control.>"}, share: true}] }
+}
+`), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	opts, err := server.ProcessConfigFile(conf)
+	if err != nil {
+		t.Fatal(err)
+	}
+	opts.NoSigs, opts.NoLog = true, true
+	ns, err := server.NewServer(opts)
+	if err != nil {
+		t.Fatal(err)
+	}
+	go ns.Start()
+	t.Cleanup(func() { ns.Shutdown(); ns.WaitForShutdown() })
+	if !ns.ReadyForConnections(10 * time.Second) {
+		t.Fatal("server not ready")
+	}
+	got := make(chan Origin, 1)
+	svcConn, err := nats.Connect(ns.ClientURL(), nats.UserInfo("daemon", "d"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer svcConn.Close()
+	svc, err := micro.AddService(svcConn, micro.Config{Name: "probe", Version: "1.0.0",
+		Endpoint: &micro.EndpointConfig{Subject: ControlSubject("cart", VerbStatus), Handler: micro.HandlerFunc(func(req micro.Request) {
+			got <- origin(req)
+			req.Respond([]byte("{}"))
+		})}})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer svc.Stop()
+	ann, err := nats.Connect(ns.ClientURL(), nats.UserInfo("ann", "a"), nats.Name("surmise ctl"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer ann.Close()
+	if _, err := ann.Request(ControlSubject("cart", VerbStatus), nil, 10*time.Second); err != nil {
+		t.Fatal(err)
+	}
+	o := <-got
+	for _, w := range []string{"request-info: ", "account=ENG", "user=ann", "client=surmise ctl", "host=127.0.0.1", "cid="} {
+		if !strings.Contains(o.Who, w) {
+			t.Errorf("origin %q lacks %q", o.Who, w)
+		}
+	}
+}
+
+func TestRequestOrigin(t *testing.T) {
+	for _, c := range []struct {
+		name string
+		hdr  micro.Headers
+		want Origin
+	}{
+		{"no header", micro.Headers{}, Origin{Who: "reply-subject: _INBOX.abc"}},
+		{"claimed", micro.Headers{HeaderOperator: {"bob@lab"}}, Origin{Who: "reply-subject: _INBOX.abc", Claimed: "bob@lab"}},
+		{"request info", micro.Headers{HeaderRequestInfo: {`{"acc":"ENG","rtt":1000,"user":"ann","name":"x","host":"10.0.0.7","id":42}`}},
+			Origin{Who: "request-info: account=ENG user=ann client=x host=10.0.0.7 cid=42"}},
+		{"request info without identity", micro.Headers{HeaderRequestInfo: {`{"rtt":1000}`}}, Origin{Who: "reply-subject: _INBOX.abc"}},
+		{"malformed request info", micro.Headers{HeaderRequestInfo: {`{"acc":`}}, Origin{Who: "reply-subject: _INBOX.abc"}},
+	} {
+		if got := RequestOrigin(c.hdr, "_INBOX.abc"); got != c.want {
+			t.Errorf("%s: %+v, want %+v", c.name, got, c.want)
+		}
+	}
+}
+
+func TestNumberJSON(t *testing.T) {
+	for _, c := range []struct {
+		v    float64
+		want string
+	}{{1.5, "1.5"}, {-0.25, "-0.25"}, {math.NaN(), "null"}, {math.Inf(1), "null"}} {
+		b, err := json.Marshal(Number(c.v))
+		if err != nil || string(b) != c.want {
+			t.Errorf("Marshal(%v) = %s, %v; want %s", c.v, b, err, c.want)
+		}
+	}
+	var n Number
+	if err := json.Unmarshal([]byte("null"), &n); err != nil || !math.IsNaN(float64(n)) {
+		t.Errorf("null → %v, %v", n, err)
+	}
+	if err := json.Unmarshal([]byte("2.5e-3"), &n); err != nil || n != 0.0025 {
+		t.Errorf("2.5e-3 → %v, %v", n, err)
+	}
+	if err := json.Unmarshal([]byte(`"x"`), &n); err == nil {
+		t.Error(`"x" read as a number`)
+	}
+}
