@@ -27,6 +27,7 @@
   let paused = false, pausedCount = 0;
   let zoomed = null;       // {min, max} of a user zoom, or null to follow the data
   let programmatic = 0;    // > 0 while we change scales ourselves
+  let pointerDown = false; // a mouse button went down on a chart and is not yet up
   let updates = 0;
   let drawTimer = null;
 
@@ -38,8 +39,13 @@
     const d = a >= 1000 ? 0 : a >= 100 ? 1 : a >= 10 ? 2 : a >= 1 ? 3 : 4;
     return v.toFixed(d);
   }
-  function ms(s) { return s == null || !isFinite(s) ? '—' : num(s * 1000) + ' ms'; }
-  function secs(s) { return s == null || !isFinite(s) ? '—' : num(s) + ' s'; }
+  // short writes a duration or a timing with three significant digits at most: 0.2, 45.6, 1200.
+  function short(v) {
+    if (v == null || !isFinite(v)) return '—';
+    const a = Math.abs(v);
+    return a >= 100 ? v.toFixed(0) : String(Number(v.toPrecision(3)));
+  }
+  function secs(s) { return s == null || !isFinite(s) ? '—' : short(s) + ' s'; }
   function clock(t) { return new Date(t * 1000).toLocaleTimeString([], { hour12: false }); }
   function span(s) {
     if (!isFinite(s)) return '—';
@@ -157,8 +163,18 @@
   }
 
   // ---- charts ----
+  // The time axis in 24-hour clock time, with tenths of a second when zoomed in to a few seconds.
   function axisX() {
-    return { stroke: INK, grid: { stroke: GRID }, ticks: { stroke: GRID }, font: '13px system-ui, sans-serif', size: 44 };
+    return {
+      stroke: INK, grid: { stroke: GRID }, ticks: { stroke: GRID }, font: '13px system-ui, sans-serif', size: 34, space: 90,
+      values: (u, splits) => {
+        const fine = u.scales.x.max - u.scales.x.min < 10;
+        return splits.map((v) => {
+          const s = clock(v);
+          return fine ? s + '.' + Math.floor((v * 10) % 10) : s;
+        });
+      },
+    };
   }
   function axisY(label, size) {
     return { stroke: INK, grid: { stroke: GRID }, ticks: { stroke: GRID }, font: '13px system-ui, sans-serif', label, labelFont: '600 13px system-ui, sans-serif', labelSize: 22, size: size || 62 };
@@ -246,6 +262,7 @@
     const bands = (spec.bands || []).map(([a, b]) => ({ series: [a, b], fill: BAND }));
     const opts = {
       width, height,
+      padding: [10, 30, 0, 0],
       cursor: { sync: { key: 'surmise' }, drag: { x: true, y: false } },
       scales: { x: { time: true } },
       axes: [axisX(), axisY(spec.unit)],
@@ -256,7 +273,7 @@
         return o;
       })),
       bands,
-      legend: { live: true },
+      legend: { live: spec.live !== false },
       hooks: {
         setScale: [(u, key) => onScale(u, key)],
         draw: [gainMarks],
@@ -265,6 +282,7 @@
     if (spec.yRange) opts.scales.y = { range: spec.yRange };
     if (spec.axisY) opts.axes[1] = spec.axisY;
     const u = new uPlot(opts, dataOf(store, spec), target);
+    target.addEventListener('mousedown', () => { pointerDown = true; });
     target.addEventListener('dblclick', () => resetZoom());
     return u;
   }
@@ -279,13 +297,21 @@
     ax.splits = () => [1, 2, 3, 4];
     ax.values = (u, splits) => splits.map((v) => names[v - 1] || '');
     ax.grid = { show: false };
-    return { key: 'status', unit: '', series, yRange: [0, 4.6], axisY: ax };
+    return { key: 'status', unit: '', series, yRange: [0, 4.6], axisY: ax, live: false };
   }
 
+  // onScale hears every change of a chart's time scale; one made by a drag across the chart is a
+  // zoom, which every other chart follows and new data no longer moves. (uPlot also rescales on
+  // its own, on a resize for one; those are not zooms.)
   function onScale(u, key) {
-    if (key !== 'x' || programmatic > 0 || !cur) return;
+    if (key !== 'x') return;
+    const x = u.scales.x;
+    if (x.min != null) u.root.parentElement.dataset.xrange = x.min.toFixed(3) + '…' + x.max.toFixed(3);
+    if (programmatic > 0 || !cur || !pointerDown) return;
     const { min, max } = u.scales.x;
     zoomed = { min, max };
+    root.dataset.zoomed = 'true';
+    root.dataset.xrange = min.toFixed(3) + '…' + max.toFixed(3);
     programmatic++;
     try {
       for (const other of cur.plots) if (other !== u) other.setScale('x', { min, max });
@@ -294,6 +320,7 @@
 
   function resetZoom() {
     zoomed = null;
+    root.dataset.zoomed = 'false';
     draw(true);
   }
 
@@ -342,6 +369,10 @@
       });
     } finally { programmatic--; }
     root.dataset.points = String(store.cols.t.length);
+    if (cur.plots.length) {
+      const x = cur.plots[0].scales.x;
+      if (x.min != null) root.dataset.xrange = x.min.toFixed(3) + '…' + x.max.toFixed(3);
+    }
     showFigures();
     showTables();
   }
@@ -370,18 +401,20 @@
     $('badge-since').textContent = st.say + ' — for ' + span(c.t[k] - c.t[j]) + ' (since ' + clock(c.t[j]) + ')';
 
     const mean = c.mean[k], lo = c.lo[k], hi = c.hi[k];
-    const nm = $('nis-mean');
+    const judge = mean == null || lo == null ? '' : (mean < lo || mean > hi ? 'out' : 'in');
+    const nm = $('nis-mean'), nb = $('nis-band');
     nm.textContent = num(mean);
-    nm.dataset.judge = mean == null || lo == null ? '' : (mean < lo || mean > hi ? 'out' : 'in');
-    $('nis-band').textContent = '95 % band ' + num(lo) + ' – ' + num(hi) + ' · this tick ' + num(c.nis[k]);
+    nm.dataset.judge = nb.dataset.judge = judge;
+    nb.textContent = (judge === 'out' ? '▲ OUT of band ' : judge === 'in' ? '✓ in band ' : 'band ') + num(lo) + ' – ' + num(hi) +
+      ' · this tick ' + num(c.nis[k]);
 
     $('tick-seq').textContent = String(c.seq[k]);
     $('tick-time').textContent = clock(c.t[k]) + ' · every ' + secs(cur.info.period);
-    $('tick-timing').textContent = c.late[k] == null ? '—' : num(c.late[k]) + ' ms';
+    $('tick-timing').textContent = c.late[k] == null ? '—' : short(c.late[k]) + ' ms';
     let missed = 0, worst = 0;
     for (let i = 0; i <= k; i++) { missed += c.missed[i] || 0; worst = Math.max(worst, c.late[i] || 0); }
-    $('tick-timing-sub').textContent = 'late now · compute ' + (c.compute[k] == null ? '—' : num(c.compute[k]) + ' ms') +
-      ' · worst late ' + num(worst) + ' ms · missed ' + missed;
+    $('tick-timing-sub').textContent = 'late now · compute ' + (c.compute[k] == null ? '—' : short(c.compute[k]) + ' ms') +
+      ' · worst ' + short(worst) + ' ms late · ' + missed + ' missed';
     $('active-gains').textContent = c.gains[k] || '—';
     const set = setInfo(c.gains[k]);
     $('active-form').textContent = set ? set.form + ' form · ' + (set.method || 'method unknown') : '';
@@ -614,6 +647,9 @@
 
   async function start() {
     drawIcon($('badge-icon'), 'none');
+    root.dataset.zoomed = 'false';
+    // uPlot ends a drag on the document's mouseup; this runs after it, in the bubbling order.
+    window.addEventListener('mouseup', () => { pointerDown = false; });
     $('pause').addEventListener('click', () => setPaused(!paused));
     $('zoom-reset').addEventListener('click', resetZoom);
     try {
