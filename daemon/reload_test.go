@@ -2,6 +2,7 @@ package daemon
 
 import (
 	"bytes"
+	"context"
 	"errors"
 	"fmt"
 	"log/slog"
@@ -571,5 +572,77 @@ func cmConfigMapSwap(t testing.TB, cm string, files map[string][]byte) {
 		if err := os.RemoveAll(filepath.Join(cm, old)); err != nil {
 			t.Fatal(err)
 		}
+	}
+}
+
+// TestDaemonReloads runs a whole Daemon on the cart (embedded server, no
+// samples: it coasts) and changes its gains the two ways the daemon wires
+// itself: a change in the watched directory, and Reload as SIGHUP calls it.
+// Each accepted change lands in StateDir/gains-audit.jsonl.
+func TestDaemonReloads(t *testing.T) {
+	dir, state := t.TempDir(), t.TempDir()
+	path := cmPlantFile(t, dir, "sample: 100ms", "sample: 20ms")
+	plant := cmLoadPlant(t, path)
+	cmWriteAtomic(t, plant.GainsPath, cmGains(t, plant, "slow", "kalman", "slow", "fast", "kalman"))
+	gains, err := config.LoadGains(plant.GainsPath, plant)
+	if err != nil {
+		t.Fatal(err)
+	}
+	reg := prometheus.NewPedanticRegistry()
+	started := make(chan Endpoints, 1)
+	d, err := New(Options{
+		Plants: []PlantSpec{{Plant: plant, Gains: gains}}, EmbeddedPort: -1, Listen: "127.0.0.1:0",
+		StateDir: state, Registry: reg, Notify: func(string) error { return nil },
+		Started: func(ep Endpoints) { started <- ep },
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx, cancel := context.WithCancel(context.Background())
+	done := make(chan error, 1)
+	go func() { done <- d.Run(ctx) }()
+	defer func() {
+		cancel()
+		if err := <-done; err != nil {
+			t.Error(err)
+		}
+	}()
+	select {
+	case <-started:
+	case <-time.After(20 * time.Second):
+		t.Fatal("the daemon did not start")
+	}
+	c := d.Estimators()[0].Commissioner()
+	reloads := func(result string) float64 {
+		v, _ := engMetricValue(t, reg, "surmise_gain_reloads_total", map[string]string{"estimator": "cart", "result": result})
+		return v
+	}
+	cmPoll(t, 10*time.Second, func() bool { st := c.Status(); return st.Shadow != nil && st.Shadow.Gains == "kalman" }, "the shadow lane")
+
+	// The watcher: an atomic rename of the gains file.
+	cmWriteAtomic(t, plant.GainsPath, cmGains(t, plant, "fast", "kalman", "slow", "fast", "kalman"))
+	cmPoll(t, 10*time.Second, func() bool { return c.Status().Active.Name == "fast" }, "the file change")
+	if st := c.Status(); st.LastReload.Trigger != TriggerFile || reloads("ok") != 1 {
+		t.Errorf("last reload %+v, %v ok", st.LastReload, reloads("ok"))
+	}
+	// Reload, as SIGHUP: the plant file changed, refused.
+	cmPlantFile(t, dir, "sample: 100ms", "sample: 20ms", "bench.cart.force", "bench.cart.push")
+	d.Reload(TriggerSignal)
+	cmPoll(t, 10*time.Second, func() bool { return reloads("refused") >= 1 }, "the refusal")
+	if st := c.Status(); !strings.Contains(st.RestartNeeded, "wiring") || st.Active.Name != "fast" {
+		t.Errorf("status: restart %q, active %s", st.RestartNeeded, st.Active.Name)
+	}
+	if got := d.Estimators()[0].Gains(); got.Active != "fast" || got.Candidate != "kalman" {
+		t.Errorf("the estimator's gains file in effect: active %s, candidate %s", got.Active, got.Candidate)
+	}
+	data, err := os.ReadFile(filepath.Join(state, AuditFile))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if n := strings.Count(string(data), "\n"); n != 1 || !strings.Contains(string(data), `"trigger":"file"`) {
+		t.Errorf("audit file:\n%s", data)
+	}
+	if d.AuditPath() != filepath.Join(state, AuditFile) {
+		t.Errorf("AuditPath %q", d.AuditPath())
 	}
 }
