@@ -118,11 +118,27 @@ func (e *Estimator) Subject() string { return e.subject }
 // Period returns its tick period, the plant's sample time.
 func (e *Estimator) Period() time.Duration { return e.period }
 
+// Pending limits of a signal's subscription: the samples received but not
+// yet handed to the engine. A backlog is only ever a symptom of a process
+// that cannot keep up, and its samples are mostly too old to be used (only
+// the newest per tick is), so it is kept short: beyond it the client drops
+// samples and reports a slow consumer, instead of the client's defaults
+// (512 Ki messages, 64 MiB per subscription) letting memory grow. 256
+// samples are 25 s of a 10 Hz signal, a quarter second of a 1 kHz one.
+const (
+	samplePendingMsgs  = 256
+	samplePendingBytes = 64 << 10
+)
+
 // subscribe makes one subscription per wired signal.
 func (e *Estimator) subscribe(nc *nats.Conn) error {
 	for i := range e.signals {
 		s := &e.signals[i]
-		if _, err := nc.Subscribe(s.subject, func(msg *nats.Msg) { e.receive(s, msg.Data) }); err != nil {
+		sub, err := nc.Subscribe(s.subject, func(msg *nats.Msg) { e.receive(s, msg.Data) })
+		if err == nil {
+			err = sub.SetPendingLimits(samplePendingMsgs, samplePendingBytes)
+		}
+		if err != nil {
 			return fmt.Errorf("estimator %s: subscribing to %s: %w", e.name, s.subject, err)
 		}
 	}
