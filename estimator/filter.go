@@ -550,6 +550,35 @@ func (f *Filter) Step(u, y []float64, present Pattern) Outcome {
 	f.svOK, f.svGain = false, nil
 	if pr.form == Kalman {
 		f.correctKalman(pat, &out)
+	} else if g := &pr.gains[0]; pat == g.outputs && g.chol != nil {
+		// The common case inline: every output present (so r is in the
+		// order of the gain's outputs) and S known. An outlier goes the
+		// general way.
+		k := len(g.idx)
+		rs := f.r[:k]
+		nis := 0.0
+		z, ch, inv := f.z[:k], g.chol, g.invDiag[:k]
+		for i, v := range rs {
+			for j, lv := range ch[i*k : i*k+i] {
+				v -= lv * z[j]
+			}
+			v *= inv[i]
+			z[i] = v
+			nis += v * v
+		}
+		if pr.thr != nil && nis > pr.thr[k] {
+			f.correctFixed(pat, &out)
+		} else {
+			out.HasNIS, out.NIS, out.Dof = true, nis, k
+			f.svGain = g
+			if pr.form == Current {
+				flatMulVecAdd(f.x, g.l, rs)
+			} else {
+				flatMulVec(f.pend, g.l, rs)
+				f.hasP = true
+			}
+			out.Corrected, out.Used = true, pat
+		}
 	} else {
 		f.correctFixed(pat, &out)
 	}
