@@ -4,11 +4,14 @@ import (
 	"context"
 	"encoding/json"
 	"os"
+	"os/exec"
 	"path/filepath"
+	"regexp"
 	"strconv"
 	"strings"
 	"sync"
 	"sync/atomic"
+	"syscall"
 	"testing"
 	"time"
 
@@ -276,5 +279,57 @@ func TestCtlUsage(t *testing.T) {
 		if code != 2 || !strings.Contains(stderr, c.want) {
 			t.Errorf("%s: exit %d, stderr %q; want 2 and %q", strings.Join(c.args, " "), code, stderr, c.want)
 		}
+	}
+}
+
+// TestRunSIGHUP runs the built binary on the cart and sends it SIGHUP: it
+// does not die of it, it reloads (here: nothing changed, so an accepted
+// reload that changes nothing, logged with trigger=signal), and SIGTERM then
+// stops it with status 0.
+func TestRunSIGHUP(t *testing.T) {
+	if buildErr != nil {
+		t.Fatal(buildErr)
+	}
+	dir := t.TempDir()
+	src, err := os.ReadFile(filepath.Join("..", "..", "daemon", "testdata", "commission", "cart.yaml"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	plantFile := filepath.Join(dir, "cart.yaml")
+	if err := os.WriteFile(plantFile, src, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	if _, stderr, code := cli(t, "design", "--method", "place", "--form", "prediction", "--poles", "0.995,0.99", "--name", "slow", plantFile); code != 0 {
+		t.Fatalf("design: %s", stderr)
+	}
+	stdout, stderr := newSyncBuffer(), newSyncBuffer()
+	cmd := exec.Command(binary, "run", "--nats-port", "-1", "--listen", "127.0.0.1:0", "--state-dir", t.TempDir(), plantFile)
+	cmd.Stdout, cmd.Stderr = stdout, stderr
+	if err := cmd.Start(); err != nil {
+		t.Fatal(err)
+	}
+	exited := make(chan error, 1)
+	go func() { exited <- cmd.Wait() }()
+	defer func() {
+		if cmd.ProcessState == nil {
+			cmd.Process.Kill()
+			<-exited
+		}
+	}()
+	stdout.waitMatch(t, regexp.MustCompile(`(?m)^(bus):`), 30*time.Second)
+	if err := cmd.Process.Signal(syscall.SIGHUP); err != nil {
+		t.Fatal(err)
+	}
+	stderr.waitMatch(t, regexp.MustCompile(`(gains reloaded)" estimator=cart trigger=signal .*nothing to do`), 20*time.Second)
+	if err := cmd.Process.Signal(syscall.SIGTERM); err != nil {
+		t.Fatal(err)
+	}
+	select {
+	case err := <-exited:
+		if err != nil {
+			t.Errorf("exit: %v\n%s", err, stderr.String())
+		}
+	case <-time.After(20 * time.Second):
+		t.Fatal("no exit 20 s after SIGTERM")
 	}
 }
