@@ -856,7 +856,9 @@ func flags(used, out, stale estimator.Pattern, j int) int {
 // the rows since the previous update, plus "samples" (counts received and
 // rejected by signal and reason) when a Gatherer is set, at most once a
 // second. The stream starts after the Last-Event-ID a reconnecting browser
-// sends, or else after ?since=SEQ, or else with the next tick.
+// sends, or else after ?since=SEQ, or else with the next tick. A client that
+// asks for ticks after the newest one has seen a previous run of the
+// daemon: its first update starts at the oldest row and says "reset": true.
 func (p *Page) serveEvents(w http.ResponseWriter, r *http.Request) {
 	pe := p.lookup(w, r)
 	if pe == nil {
@@ -875,10 +877,18 @@ func (p *Page) serveEvents(w http.ResponseWriter, r *http.Request) {
 			return
 		}
 		since = v
-	} else {
-		pe.mu.Lock()
-		since = pe.ring.last()
-		pe.mu.Unlock()
+	}
+	pe.mu.Lock()
+	newest := pe.ring.last()
+	pe.mu.Unlock()
+	// A client that has seen ticks this page never had saw an earlier run
+	// of the daemon: it starts again from the oldest row, told to reset.
+	reset := since > newest
+	if arg == "" || reset {
+		since = newest
+	}
+	if reset {
+		since = 0
 	}
 
 	rc := http.NewResponseController(w)
@@ -969,13 +979,17 @@ func (p *Page) serveEvents(w http.ResponseWriter, r *http.Request) {
 		out = append(out[:0], "id: "...)
 		out = strconv.AppendUint(out, last, 10)
 		out = append(out, "\nevent: tick\ndata: "...)
+		if reset {
+			out = append(out, `{"reset":true,`...)
+			body = body[1:]
+		}
 		out = append(out, body...)
 		out = append(out, "\n\n"...)
 		if !write(out) {
 			return
 		}
 		p.messages.Add(1)
-		since, lastSent = last, now
+		since, lastSent, reset = last, now, false
 	}
 }
 

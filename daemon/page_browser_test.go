@@ -122,9 +122,10 @@ func pageSimulate(ctx context.Context, t *testing.T, nc *nats.Conn, spec daemon.
 // live page in headless chromium, and checks what an operator would see:
 // every chart gets data; the status is tracking while the sensors report
 // and turns to coasting when they stop; pause freezes the view while data
-// keeps arriving; the shadow candidate shows beside the active gains; the
-// page raises no script error and breaks no rule of its content security
-// policy. It writes two screenshots and logs their paths.
+// keeps arriving; a drag zooms every chart and a double-click undoes it; the
+// shadow candidate shows beside the active gains, and its promotion in the
+// audit trail; the page raises no script error and breaks no rule of its
+// content security policy. It writes two screenshots and logs their paths.
 func TestPageInBrowser(t *testing.T) {
 	browser := chromiumPath(t)
 	const ts = 200 * time.Millisecond
@@ -136,6 +137,7 @@ func TestPageInBrowser(t *testing.T) {
 		EmbeddedPort:     -1,
 		Listen:           "127.0.0.1:0",
 		ReloadDebounce:   -1,
+		MinDwell:         -1,
 		WatchdogInterval: -1,
 		Notify:           func(string) error { return nil },
 		Started:          func(ep daemon.Endpoints) { epc <- ep },
@@ -354,7 +356,18 @@ func TestPageInBrowser(t *testing.T) {
 	step("back to the top", chromedp.Evaluate[chromedp.Void](`window.scrollTo(0, 0)`))
 	screenshot("tracking")
 
-	// 4. The sensors drop out: the estimator coasts, and the page says so.
+	// 4. The candidate is promoted: the page shows the new active set and
+	// the swap in the audit trail.
+	if _, err := d.Estimators()[0].Commissioner().Promote(daemon.PromoteRequest{}, daemon.Origin{Who: "the page's browser test"}); err != nil {
+		t.Fatalf("promote: %v", err)
+	}
+	poll("the page shows the promotion", `document.getElementById("active-gains").textContent === "kalman-current"`+
+		` && document.getElementById("audit-table").innerText.includes("promote")`)
+	if a := eval(`document.getElementById("audit-table").innerText`); !strings.Contains(a, "place-prediction → kalman-current") {
+		t.Errorf("audit trail does not show the swap from place-prediction to kalman-current:\n%s", a)
+	}
+
+	// 5. The sensors drop out: the estimator coasts, and the page says so.
 	sensors.Store(false)
 	poll("the status is coasting", root+`.status === "coasting" && document.getElementById("badge").dataset.status === "coasting"`)
 	if w := eval(`document.getElementById("badge-word").textContent`); w != "coasting" {

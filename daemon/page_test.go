@@ -52,6 +52,7 @@ type pageRow struct {
 
 // pageUpdate is the body of /api/history and of one /events update.
 type pageUpdate struct {
+	Reset   bool                          `json:"reset"`
 	Gap     bool                          `json:"gap"`
 	Rows    []pageRow                     `json:"rows"`
 	Seq     uint64                        `json:"seq"`
@@ -499,24 +500,26 @@ func TestPageEventsThrottledAndComplete(t *testing.T) {
 }
 
 // TestPageEventsResume checks where a stream starts: after ?since, after
-// the Last-Event-ID of a reconnecting browser (which wins), and with a gap
-// flag when the rows asked for have left the ring.
+// the Last-Event-ID of a reconnecting browser (which wins), with a gap flag
+// when the rows asked for have left the ring, and from the oldest row with
+// a reset flag for a client that saw ticks this page never had (a previous
+// run of the daemon).
 func TestPageEventsResume(t *testing.T) {
 	r := newPageRig(t, daemon.PageOptions{History: 20 * time.Second}, false)
 	for range 30 {
 		r.tick(true)
 	}
 	cases := []struct {
-		name    string
-		query   string
-		header  http.Header
-		first   uint64
-		gap     bool
-		samples bool
+		name   string
+		query  string
+		header http.Header
+		first  uint64
+		gap    bool
 	}{
-		{"since", "&since=25", nil, 26, false, true},
-		{"last-event-id wins", "&since=5", http.Header{"Last-Event-Id": {"28"}}, 29, false, true},
-		{"gap", "&since=3", nil, 11, true, true}, // the ring holds 11…30
+		{"since", "&since=25", nil, 26, false},
+		{"last-event-id wins", "&since=5", http.Header{"Last-Event-Id": {"28"}}, 29, false},
+		{"gap", "&since=3", nil, 11, true}, // the ring holds 11…30
+		{"restarted", "&since=31", nil, 11, true},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
@@ -526,6 +529,9 @@ func TestPageEventsResume(t *testing.T) {
 				t.Fatal("stream ended")
 			}
 			u := decodeUpdate(t, ev)
+			if u.Reset != (c.name == "restarted") {
+				t.Errorf("reset %v", u.Reset)
+			}
 			if len(u.Rows) == 0 || u.Rows[0].Seq != c.first || u.Rows[len(u.Rows)-1].Seq != 30 || u.Gap != c.gap {
 				t.Fatalf("first update: %d rows from %d, gap %v; want rows %d…30, gap %v", len(u.Rows), u.Rows[0].Seq, u.Gap, c.first, c.gap)
 			}
@@ -535,8 +541,8 @@ func TestPageEventsResume(t *testing.T) {
 			}
 		})
 	}
-	if s := r.page.Stats(); s.Gaps != 1 {
-		t.Errorf("stats %+v, want 1 gap", s)
+	if s := r.page.Stats(); s.Gaps != 2 {
+		t.Errorf("stats %+v, want 2 gaps", s)
 	}
 	res, body := r.get("/events?estimator=" + r.plant.Name + "&since=soon")
 	if res.StatusCode != http.StatusBadRequest {

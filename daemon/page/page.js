@@ -101,7 +101,7 @@
 
   // ---- the store: one column per plotted or shown quantity, oldest first ----
   function newStore(info) {
-    const cols = { t: [], seq: [], status: [], gains: [], cgains: [], nis: [], mean: [], lo: [], hi: [], cnis: [], cmean: [], late: [], compute: [], missed: [] };
+    const cols = { t: [], seq: [], status: [], gains: [], cgains: [], nis: [], mean: [], lo: [], hi: [], cnis: [], cmean: [], clo: [], chi: [], late: [], compute: [], missed: [] };
     for (let k = 0; k < 4; k++) cols['lvl' + k] = [];
     info.outputs.forEach((_, j) => {
       for (const c of ['meas', 'pred', 'inn', 'std', 'up', 'dn', 'age', 'flags', 'gate', 'cpred', 'cinn', 'cflags']) cols['o' + j + c] = [];
@@ -124,6 +124,7 @@
     const cd = r.cand;
     c.cgains.push(cd ? cd.gains : null);
     c.cnis.push(cd ? cd.nis : null); c.cmean.push(cd ? cd.nis_mean : null);
+    c.clo.push(cd ? cd.nis_band[0] : null); c.chi.push(cd ? cd.nis_band[1] : null);
     if (cd) store.cand = true;
     info.outputs.forEach((_, j) => {
       const o = r.out[j] || [], p = 'o' + j;
@@ -475,12 +476,15 @@
     showGains();
   }
 
-  // rms is the root mean square of the last n innovations of output j that were used.
+  // rms is the root mean square of the innovations of output j that the lane used, over the last
+  // window of them since the lane took its current set (the engine's innovation RMS, which starts
+  // again on a swap).
   function rms(j, cand) {
     const c = cur.store.cols, p = 'o' + j;
     const inn = c[p + (cand ? 'cinn' : 'inn')], flags = c[p + (cand ? 'cflags' : 'flags')];
+    const sets = cand ? c.cgains : c.gains, set = sets[sets.length - 1];
     let s = 0, n = 0;
-    for (let i = inn.length - 1; i >= 0 && n < cur.info.window; i--) {
+    for (let i = inn.length - 1; i >= 0 && n < cur.info.window && sets[i] === set; i--) {
       if ((flags[i] & FLAG_USED) && inn[i] != null) { s += inn[i] * inn[i]; n++; }
     }
     return n ? Math.sqrt(s / n) : null;
@@ -488,20 +492,21 @@
 
   function showGains() {
     const info = cur.info, c = cur.store.cols, k = lastIndex();
-    const active = c.gains[k], candName = c.cgains[k] || (info.gains && info.gains.candidate) || '';
-    const a = setInfo(active), b = setInfo(candName);
+    const active = c.gains[k];
     const running = c.cgains[k] != null;
+    const named = info.gains && info.gains.candidate && info.gains.candidate !== active ? info.gains.candidate : '';
+    const candName = running ? c.cgains[k] : named;
+    const a = setInfo(active), b = setInfo(candName);
     const rows = [];
     const row = (label, va, vb, cls) => rows.push(el('tr', {}, el('td', { text: label }), el('td', { text: va, class: cls || '' }), el('td', { text: vb, class: cls || '' })));
-    const noCand = running ? '' : (candName ? '(named in the gains file; no shadow lane running)' : 'no candidate lane');
-    row('set', active || '—', candName ? candName + (running ? '' : ' — not running') : noCand);
+    row('set', active || '—', running ? candName : 'no shadow lane running' + (named ? ' (the gains file names ' + named + ')' : ''));
     row('form', a ? a.form : '—', b ? b.form : '—');
     row('design method', a ? a.method : '—', b ? b.method : '—');
     row('error-dynamics poles', a && a.poles ? a.poles.join(', ') : '—', b && b.poles ? b.poles.join(', ') : '—', 'mono');
     row('output patterns designed', a ? String(a.patterns) : '—', b ? String(b.patterns) : '—');
     row('designed', a ? [a.created, a.tool].filter(Boolean).join(' · ') || '—' : '—', b ? [b.created, b.tool].filter(Boolean).join(' · ') || '—' : '—');
     const band = (m, lo, hi) => m == null ? '—' : num(m) + '  [' + num(lo) + ' – ' + num(hi) + ']' + (lo != null && (m < lo || m > hi) ? '  ▲ out of band' : '');
-    row('NIS window mean [95 % band]', band(c.mean[k], c.lo[k], c.hi[k]), running ? band(c.cmean[k], c.lo[k], c.hi[k]) : '—');
+    row('NIS window mean [95 % band]', band(c.mean[k], c.lo[k], c.hi[k]), running ? band(c.cmean[k], c.clo[k], c.chi[k]) : '—');
     info.outputs.forEach((o, j) => {
       row('innovation RMS, ' + o.name + ' (last ' + info.window + ')', num(rms(j, false)) + ' ' + o.unit,
         running ? num(rms(j, true)) + ' ' + o.unit : '—');
@@ -547,6 +552,10 @@
   let lastMsgAt = 0;
   function onTick(ev) {
     const msg = JSON.parse(ev.data);
+    if (msg.reset) { // the daemon restarted: start again with what it runs now
+      location.reload();
+      return;
+    }
     const n = take(msg);
     updates++;
     root.dataset.updates = String(updates);
