@@ -5,10 +5,16 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"math"
+	"slices"
 	"strings"
+	"time"
 
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/micro"
+	"gonum.org/v1/gonum/mat"
+
+	"surmise/estimator"
 )
 
 // The control service (DESIGN.md §5): one NATS micro service named
@@ -244,4 +250,251 @@ func handleReset(c *Commissioner, req micro.Request) (any, error) {
 		return nil, err
 	}
 	return c.Reset(rr, origin(req))
+}
+
+// ResetRequest is the body of a reset request. Empty, it resets to the
+// operating point with the plant's initial covariance.
+type ResetRequest struct {
+	// State holds absolute values by state name; states not named start
+	// at the operating point.
+	State map[string]float64 `json:"state,omitempty"`
+	// Std holds the standard deviation of every state, by name; or
+	// Covariance the full n×n covariance. Neither: the plant's initial
+	// covariance (else the gain set's steady state).
+	Std        map[string]float64 `json:"std,omitempty"`
+	Covariance [][]float64        `json:"covariance,omitempty"`
+}
+
+// ResetReply is the result of a reset request.
+type ResetReply struct {
+	State map[string]float64 `json:"state"` // the absolute state the lanes restart from
+	Note  string             `json:"note"`
+}
+
+// Reset restarts every lane (the active and the shadow one) at the given
+// state from the next tick; the NIS windows start again. It is not held back
+// by the dwell time: it changes no gains.
+func (c *Commissioner) Reset(req ResetRequest, who Origin) (*ResetReply, error) {
+	md := c.plant.Model
+	n, _, _ := md.Dims()
+	index := map[string]int{}
+	for i := 0; i < n; i++ {
+		index[signalName(md.States, i, "x")] = i
+	}
+	var problems []string
+	x := make([]float64, n)
+	if md.X0 != nil {
+		copy(x, md.X0)
+	}
+	for name, v := range req.State {
+		i, ok := index[name]
+		switch {
+		case !ok:
+			problems = append(problems, fmt.Sprintf("state %q: no such state", name))
+		case math.IsNaN(v) || math.IsInf(v, 0):
+			problems = append(problems, fmt.Sprintf("state %q: %v is not a finite number", name, v))
+		default:
+			x[i] = v
+		}
+	}
+	var p0 mat.Symmetric
+	switch {
+	case req.Std != nil && req.Covariance != nil:
+		problems = append(problems, "give std or covariance, not both")
+	case req.Std != nil:
+		d := mat.NewSymDense(n, nil)
+		seen := 0
+		for name, v := range req.Std {
+			i, ok := index[name]
+			switch {
+			case !ok:
+				problems = append(problems, fmt.Sprintf("std %q: no such state", name))
+			case !(v > 0) || math.IsInf(v, 0):
+				problems = append(problems, fmt.Sprintf("std %q: %v, want a finite positive number", name, v))
+			default:
+				d.SetSym(i, i, v*v)
+				seen++
+			}
+		}
+		if seen != n && len(problems) == 0 {
+			var missing []string
+			for i := 0; i < n; i++ {
+				if _, ok := req.Std[signalName(md.States, i, "x")]; !ok {
+					missing = append(missing, signalName(md.States, i, "x"))
+				}
+			}
+			problems = append(problems, "std: give every state's, missing "+strings.Join(missing, ", "))
+		}
+		p0 = d
+	case req.Covariance != nil:
+		cov, msg := covarianceOf(req.Covariance, n)
+		if msg != "" {
+			problems = append(problems, "covariance: "+msg)
+		}
+		p0 = cov
+	}
+	if len(problems) > 0 {
+		slices.Sort(problems)
+		return nil, &CommissionError{Code: CodeBadRequest, Reason: "reset refused", Detail: problems}
+	}
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	c.eng.enqueue(laneOp{kind: opReset, x: x, p0: p0})
+	reply := &ResetReply{State: map[string]float64{}}
+	for name, i := range index {
+		reply.State[name] = x[i]
+	}
+	if len(req.State) == 0 {
+		reply.Note = "every lane restarts at the operating point"
+	} else {
+		reply.Note = "every lane restarts at the given state (others at the operating point)"
+	}
+	c.record(AuditEntry{Action: "reset", Trigger: TriggerControl, Origin: who.Who, ClaimedBy: who.Claimed,
+		OldActive: c.active.ref(c.fingerprint), NewActive: c.active.ref(c.fingerprint),
+		OldCandidate: refOrNil(c.cand, c.fingerprint), NewCandidate: refOrNil(c.cand, c.fingerprint),
+		Note: reply.Note + ": " + formatState(md, x)})
+	c.log.Info("state reset", "estimator", c.name, "state", formatState(md, x), "origin", who.Who)
+	return reply, nil
+}
+
+// covarianceOf checks a covariance given as rows: n×n, finite, symmetric,
+// positive definite.
+func covarianceOf(rows [][]float64, n int) (*mat.SymDense, string) {
+	if len(rows) != n {
+		return nil, fmt.Sprintf("%d rows, want %d", len(rows), n)
+	}
+	s := mat.NewSymDense(n, nil)
+	for i, r := range rows {
+		if len(r) != n {
+			return nil, fmt.Sprintf("row %d has %d entries, want %d", i, len(r), n)
+		}
+		for j, v := range r {
+			if math.IsNaN(v) || math.IsInf(v, 0) {
+				return nil, fmt.Sprintf("[%d][%d] is %v, want a finite number", i, j, v)
+			}
+			if j > i {
+				continue
+			}
+			if w := rows[j][i]; math.Abs(v-w) > 1e-9*math.Max(math.Abs(v), math.Abs(w)) {
+				return nil, fmt.Sprintf("not symmetric: [%d][%d] = %v, [%d][%d] = %v", i, j, v, j, i, w)
+			}
+			s.SetSym(i, j, v)
+		}
+	}
+	var ch mat.Cholesky
+	if !ch.Factorize(s) {
+		return nil, "not positive definite"
+	}
+	return s, ""
+}
+
+func formatState(md *estimator.Model, x []float64) string {
+	parts := make([]string, len(x))
+	for i, v := range x {
+		parts[i] = fmt.Sprintf("%s=%g", signalName(md.States, i, "x"), v)
+	}
+	return strings.Join(parts, " ")
+}
+
+// LaneStatus is what the latest tick showed of one lane.
+type LaneStatus struct {
+	Gains   string       `json:"gains"`
+	Seq     uint64       `json:"seq"`
+	Time    time.Time    `json:"time"`
+	Status  string       `json:"status"`
+	NISMean Number       `json:"nis_mean"`
+	NISBand [2]Number    `json:"nis_band"`
+	States  []StateValue `json:"states"`
+}
+
+// StateValue is one state of a LaneStatus.
+type StateValue struct {
+	Name  string `json:"name"`
+	Unit  string `json:"unit,omitempty"`
+	Value Number `json:"value"`
+	Std   Number `json:"std"`
+}
+
+func (v *laneView) report() *LaneStatus {
+	if !v.has {
+		return nil
+	}
+	s := &LaneStatus{Gains: v.gains, Seq: v.seq, Time: v.time, Status: v.status.String(),
+		NISMean: Number(v.nisMean), NISBand: [2]Number{Number(v.lo), Number(v.hi)}}
+	for i := range v.x {
+		s.States = append(s.States, StateValue{Name: v.names[i], Unit: v.units[i], Value: Number(v.x[i]), Std: Number(v.std[i])})
+	}
+	return s
+}
+
+// StatusReply is the reply to a status request.
+type StatusReply struct {
+	Estimator string `json:"estimator"`
+	// Model is the fingerprint of the running model.
+	Model     string  `json:"model_fingerprint"`
+	Active    SetRef  `json:"active"`
+	Candidate *SetRef `json:"candidate"`
+	Previous  *SetRef `json:"previous"` // the target of a roll-back
+	// Source and SHA256 say where the gains in effect came from.
+	Source     string        `json:"source"`
+	SHA256     string        `json:"sha256,omitempty"`
+	LastReload *ReloadResult `json:"last_reload"`
+	// RestartNeeded says why the plant file on disk cannot be applied
+	// without a restart; "" when it can.
+	RestartNeeded string  `json:"restart_needed,omitempty"`
+	MinDwell      float64 `json:"min_dwell_seconds"`
+	DwellLeft     float64 `json:"dwell_remaining_seconds"`
+	// Tick and Shadow are the latest tick of the active and the candidate
+	// lane; null before the first.
+	Tick   *LaneStatus  `json:"tick"`
+	Shadow *LaneStatus  `json:"shadow"`
+	Audit  []AuditEntry `json:"audit"`
+}
+
+// statusAuditTail is how many audit entries a status reply carries.
+const statusAuditTail = 10
+
+// Status returns the estimator's commissioning state.
+func (c *Commissioner) Status() *StatusReply {
+	c.mu.Lock()
+	r := &StatusReply{
+		Estimator: c.name, Model: c.fingerprint,
+		Active: c.active.ref(c.fingerprint), Candidate: refOrNil(c.cand, c.fingerprint), Previous: refOrNil(c.prev, c.fingerprint),
+		Source: c.source, SHA256: c.inEffect, LastReload: c.last, RestartNeeded: c.restart,
+		MinDwell: c.dwell.Seconds(),
+	}
+	if c.dwell > 0 && !c.lastSwap.IsZero() {
+		r.DwellLeft = max(0, (c.dwell - c.now().Sub(c.lastSwap)).Seconds())
+	}
+	c.mu.Unlock()
+	c.obsMu.Lock()
+	r.Tick, r.Shadow = c.obs[0].report(), c.obs[1].report()
+	c.obsMu.Unlock()
+	if c.audit != nil {
+		r.Audit = c.audit.Tail(c.name, statusAuditTail)
+	}
+	return r
+}
+
+// Number is a float64 that JSON writes as null when it is NaN or infinite
+// and reads back from null as NaN.
+type Number float64
+
+// MarshalJSON writes n, or null.
+func (n Number) MarshalJSON() ([]byte, error) {
+	return appendFloat(nil, float64(n)), nil
+}
+
+// UnmarshalJSON reads a number, or null as NaN.
+func (n *Number) UnmarshalJSON(b []byte) error {
+	if string(b) == "null" {
+		*n = Number(math.NaN())
+		return nil
+	}
+	var f float64
+	if err := json.Unmarshal(b, &f); err != nil {
+		return fmt.Errorf("number: %w", err)
+	}
+	*n = Number(f)
+	return nil
 }

@@ -21,6 +21,12 @@
 //   - [HTTPServer] (http.go): /metrics, /healthz, /readyz, and a hook for
 //     the live page.
 //   - [Group] (group.go): the goroutines of the daemon and their shutdown.
+//   - [Commissioner] (reload.go, shadow.go): one per estimator; gains
+//     reloaded without a restart, a candidate set in shadow, promotion,
+//     roll-back and reset, each validated first and applied between ticks;
+//     [Watcher] (watch.go) watches the files' directories, [Audit]
+//     (audit.go) keeps the trail, [StartControl] (control.go) answers on
+//     surmise.control.<estimator>.<verb>.
 //
 // # The tick
 //
@@ -79,4 +85,22 @@
 //
 // Timing histograms share the buckets of [TimingBuckets]: 1, 2.5 and 5 per
 // decade from 10 µs to 10 s, which brackets tick periods from 1 ms to 10 s.
+//
+// # Changing gains at run time
+//
+// Three triggers take one path: SIGHUP ([Daemon.Reload]), a change in the
+// directory of a plant or gains file, and a control request carrying a
+// gains file. The path is parse (config.ParseGains), validate (the model's
+// fingerprint, dimensions, finite numbers, error dynamics inside the unit
+// circle, S where the outlier gate needs it: estimator.Prepare), then hand
+// the prepared set to the engine, which swaps it at the start of its next
+// tick. The state carries over (and P, Kalman to Kalman): the estimate does
+// not jump because of the swap, and no tick runs with parts of two sets. A
+// refused reload leaves the running gains alone and says why — in the log
+// with the file's name and line, in surmise_gain_reloads_total{result} and
+// surmise_gain_last_reload_success, in the status and the control reply. A
+// plant file that changed (model, wiring, settings) is refused: it needs a
+// restart. Promotion and roll-back are held back by a minimum dwell time
+// ([Options].MinDwell). Every accepted change is appended to
+// StateDir/gains-audit.jsonl and kept in memory for status replies.
 package daemon

@@ -1,6 +1,8 @@
 package daemon
 
 import (
+	"fmt"
+	"math"
 	"sync"
 	"sync/atomic"
 
@@ -158,5 +160,200 @@ func (e *Estimator) afterTick(connected bool) {
 	}
 	if e.comm != nil {
 		e.comm.observe(e.est, cand)
+	}
+}
+
+// PromoteRequest is the body of a promote request.
+type PromoteRequest struct {
+	// Transfer is KeepState (the default when empty) or AdoptState.
+	Transfer Transfer `json:"transfer"`
+	// Confirm applies an AdoptState promotion; without it the reply
+	// reports the jump and nothing changes.
+	Confirm bool `json:"confirm"`
+}
+
+// PromoteReply is the result of a promote request.
+type PromoteReply struct {
+	// Applied is false for an AdoptState request without Confirm.
+	Applied  bool     `json:"applied"`
+	Transfer Transfer `json:"transfer"`
+	Active   SetRef   `json:"active"`   // the active set after the promotion (to be, when not applied)
+	Previous SetRef   `json:"previous"` // the set it replaces, the target of a roll-back
+	// Jump is the difference between the candidate's and the active
+	// estimate at the latest tick (AdoptState only).
+	Jump *Jump  `json:"jump,omitempty"`
+	Note string `json:"note"`
+}
+
+// Jump is the difference between two estimates of the same tick.
+type Jump struct {
+	Seq    uint64      `json:"seq"`  // the tick
+	Norm   float64     `json:"norm"` // ‖x̂_cand − x̂_act‖, Euclidean, in the states' mixed units
+	States []StateJump `json:"states"`
+}
+
+// StateJump is one state's part of a Jump.
+type StateJump struct {
+	Name       string  `json:"name"`
+	Unit       string  `json:"unit,omitempty"`
+	Active     float64 `json:"active"`
+	Candidate  float64 `json:"candidate"`
+	Difference float64 `json:"difference"` // candidate − active
+	// Sigmas is Difference over the active estimate's standard deviation;
+	// null when that is unknown.
+	Sigmas Number `json:"sigmas"`
+}
+
+// Promote makes the candidate set active (see PromoteRequest). It is refused
+// when no candidate runs, within the minimum dwell time of the previous swap,
+// and for AdoptState before the candidate has run a tick. The previous active
+// set becomes the target of Rollback and the shadow lane stops.
+func (c *Commissioner) Promote(req PromoteRequest, who Origin) (*PromoteReply, error) {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	tr := req.Transfer
+	if tr == "" {
+		tr = KeepState
+	}
+	if tr != KeepState && tr != AdoptState {
+		return nil, refusal(CodeBadRequest, "transfer %q: want %q or %q", req.Transfer, KeepState, AdoptState)
+	}
+	if c.cand == nil {
+		return nil, refusal(CodeRefused, "no candidate gain set runs in shadow: nothing to promote")
+	}
+	if err := c.checkDwell("promote"); err != nil {
+		return nil, err
+	}
+	reply := &PromoteReply{Transfer: tr, Active: c.cand.ref(c.fingerprint), Previous: c.active.ref(c.fingerprint)}
+	if tr == AdoptState {
+		j, err := c.jump()
+		if err != nil {
+			return nil, err
+		}
+		reply.Jump = j
+		if !req.Confirm {
+			reply.Note = fmt.Sprintf("not applied: adopting the candidate's state would move the estimate by %.6g (see the states); repeat with confirm to apply", j.Norm)
+			return reply, nil
+		}
+	}
+	c.eng.enqueue(laneOp{kind: opPromote, adopt: tr == AdoptState})
+	old := c.active
+	c.prev, c.active, c.cand = old, c.cand, nil
+	c.lastSwap = c.now()
+	reply.Applied = true
+	if tr == AdoptState {
+		reply.Note = fmt.Sprintf("%s promoted with its own state (the estimate moved by %.6g); shadow stopped; rollback returns %s", c.active.named.Set.Name, reply.Jump.Norm, old.named.Set.Name)
+	} else {
+		reply.Note = fmt.Sprintf("%s promoted, state carried over; shadow stopped; rollback returns %s", c.active.named.Set.Name, old.named.Set.Name)
+	}
+	e := AuditEntry{Action: "promote", Trigger: TriggerControl, Origin: who.Who, ClaimedBy: who.Claimed,
+		OldActive: old.ref(c.fingerprint), NewActive: c.active.ref(c.fingerprint),
+		OldCandidate: refOrNil(c.active, c.fingerprint), Transfer: string(tr), Note: reply.Note}
+	if reply.Jump != nil {
+		norm := reply.Jump.Norm
+		e.Jump = &norm
+	}
+	c.record(e)
+	c.log.Info("candidate promoted", "estimator", c.name, "set", c.active.named.Set.Name, "previous", old.named.Set.Name, "transfer", string(tr), "origin", who.Who)
+	c.publishGains()
+	return reply, nil
+}
+
+// checkDwell refuses a swap within the minimum dwell time of the previous one.
+func (c *Commissioner) checkDwell(what string) *CommissionError {
+	if c.dwell <= 0 || c.lastSwap.IsZero() {
+		return nil
+	}
+	if since := c.now().Sub(c.lastSwap); since < c.dwell {
+		return refusal(CodeRefused, "%s refused: the active set changed %.3g s ago, the minimum dwell time is %v; try again in %.3g s",
+			what, since.Seconds(), c.dwell, (c.dwell - since).Seconds())
+	}
+	return nil
+}
+
+// jump compares the latest ticks of the candidate and the active lane.
+func (c *Commissioner) jump() (*Jump, *CommissionError) {
+	c.obsMu.Lock()
+	defer c.obsMu.Unlock()
+	a, k := &c.obs[0], &c.obs[1]
+	if !a.has || !k.has || k.gains != c.cand.named.Set.Name || a.seq != k.seq {
+		return nil, refusal(CodeRefused, "the candidate %s has not run a tick yet: no state to adopt", c.cand.named.Set.Name)
+	}
+	j := &Jump{Seq: a.seq}
+	var sq float64
+	for i := range a.x {
+		d := k.x[i] - a.x[i]
+		sq += d * d
+		s := StateJump{Name: a.names[i], Unit: a.units[i], Active: a.x[i], Candidate: k.x[i], Difference: d, Sigmas: Number(math.NaN())}
+		if sd := a.std[i]; sd > 0 {
+			s.Sigmas = Number(d / sd)
+		}
+		j.States = append(j.States, s)
+	}
+	j.Norm = math.Sqrt(sq)
+	return j, nil
+}
+
+// RollbackReply is the result of a rollback request.
+type RollbackReply struct {
+	Active   SetRef `json:"active"`   // the set that runs again
+	Previous SetRef `json:"previous"` // the set it replaces (a second roll-back returns it)
+	Note     string `json:"note"`
+}
+
+// Rollback makes the previous active set active again, state carried over.
+// It is refused when there is none and within the minimum dwell time of the
+// previous swap. A candidate of the same name stops.
+func (c *Commissioner) Rollback(who Origin) (*RollbackReply, error) {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	if c.prev == nil {
+		return nil, refusal(CodeRefused, "no previous active set: nothing to roll back to")
+	}
+	if err := c.checkDwell("rollback"); err != nil {
+		return nil, err
+	}
+	old, back := c.active, c.prev
+	ops := []laneOp{{kind: opActive, prep: back.prep}}
+	oldCand := c.cand
+	if c.cand != nil && c.cand.named.Set.Name == back.named.Set.Name {
+		ops = append(ops, laneOp{kind: opCandidate})
+		c.cand = nil
+	}
+	c.eng.enqueue(ops...)
+	c.active, c.prev = back, old
+	c.lastSwap = c.now()
+	reply := &RollbackReply{Active: back.ref(c.fingerprint), Previous: old.ref(c.fingerprint),
+		Note: fmt.Sprintf("%s is active again, state carried over; rollback again returns %s", back.named.Set.Name, old.named.Set.Name)}
+	c.record(AuditEntry{Action: "rollback", Trigger: TriggerControl, Origin: who.Who, ClaimedBy: who.Claimed,
+		OldActive: old.ref(c.fingerprint), NewActive: back.ref(c.fingerprint),
+		OldCandidate: refOrNil(oldCand, c.fingerprint), NewCandidate: refOrNil(c.cand, c.fingerprint), Note: reply.Note})
+	c.log.Info("gains rolled back", "estimator", c.name, "set", back.named.Set.Name, "replaced", old.named.Set.Name, "origin", who.Who)
+	c.publishGains()
+	return reply, nil
+}
+
+// observe records the latest tick of the active lane and, when cand is not
+// nil, of the candidate lane, for status and the jump of an adopt-state
+// promotion. It is called on the tick goroutine after each tick and
+// allocates nothing.
+func (c *Commissioner) observe(act, cand *Estimate) {
+	c.obsMu.Lock()
+	c.obs[0].set(act)
+	if cand != nil {
+		c.obs[1].set(cand)
+	} else {
+		c.obs[1].has = false
+	}
+	c.obsMu.Unlock()
+}
+
+func (v *laneView) set(est *Estimate) {
+	v.has = true
+	v.gains, v.seq, v.time, v.status = est.Gains, est.Seq, est.Time, est.Status
+	v.nisMean, v.lo, v.hi = est.NISMean, est.NISBand[0], est.NISBand[1]
+	for i := range est.States {
+		s := &est.States[i]
+		v.x[i], v.std[i], v.names[i], v.units[i] = s.Value, s.Std, s.Name, s.Unit
 	}
 }
