@@ -254,21 +254,20 @@ func NewCommissioner(opts CommissionerOptions) (*Commissioner, error) {
 	c.eng.enqueue(laneOp{kind: opActive, prep: act.prep}, laneOp{kind: opCandidate, prep: prepOf(cand)})
 
 	// The hashes of the files as they are now, if they still say what the
-	// daemon was started with; otherwise the first look at the disk
-	// reloads.
+	// daemon was started with. Otherwise they stay unknown, and the first
+	// look at the disk (the watcher makes one as soon as it watches)
+	// reloads the gains, or refuses the plant file.
 	if data, err := os.ReadFile(c.plant.GainsPath); err == nil {
-		sum := digest(data)
-		c.gainsDisk = sum
 		if g, err := config.ParseGains(c.plant.GainsPath, data, c.plant); err == nil && reflect.DeepEqual(g, opts.Gains) {
-			c.inEffect = sum
+			c.inEffect = digest(data)
+			c.gainsDisk = c.inEffect
 		}
 	}
 	if c.plant.Path != "" {
 		if data, err := os.ReadFile(c.plant.Path); err == nil {
-			sum := digest(data)
-			c.plantDisk = sum
 			if p, err := config.ParsePlant(c.plant.Path, data); err == nil && plantDiff(c.plant, p) == "" {
-				c.plantSum = sum
+				c.plantSum = digest(data)
+				c.plantDisk = c.plantSum
 			}
 		}
 	}

@@ -646,3 +646,26 @@ func TestDaemonReloads(t *testing.T) {
 		t.Errorf("AuditPath %q", d.AuditPath())
 	}
 }
+
+// TestReloadChangeBeforeWatch: a gains file that changed between the
+// daemon's reading it and the commissioner's start is reloaded at the first
+// look, even though the disk does not change after that.
+func TestReloadChangeBeforeWatch(t *testing.T) {
+	r := newCMRig(t, cmRigOptions{active: "slow"})
+	started, err := config.ParseGains(r.plant.GainsPath, cmGains(t, r.plant, "slow", "", "slow", "steady", "fast", "kalman"), r.plant)
+	if err != nil {
+		t.Fatal(err)
+	}
+	cmWriteAtomic(t, r.plant.GainsPath, cmGains(t, r.plant, "fast", "", "fast"))
+	c, err := NewCommissioner(CommissionerOptions{Plant: r.plant, Gains: started, Engine: r.eng, MinDwell: -1})
+	if err != nil {
+		t.Fatal(err)
+	}
+	rep, err := c.ReloadFromDisk(TriggerFile, true)
+	if err != nil || rep == nil || rep.Active.Name != "fast" {
+		t.Fatalf("first look: %+v, %v; want fast loaded", rep, err)
+	}
+	if rep, err := c.ReloadFromDisk(TriggerFile, true); rep != nil || err != nil {
+		t.Errorf("second look with nothing changed: %+v, %v", rep, err)
+	}
+}
