@@ -199,6 +199,36 @@ func NewBusSource(plant *config.Plant, rec *recording.BusRecording) *ReplaySourc
 	return src
 }
 
+// TruthCursor reads the true states of a source at increasing times.
+type TruthCursor struct {
+	truth [][]TruthSample
+	at    []int
+}
+
+// TruthCursor returns a cursor over the source's true states; nil when the
+// source has none.
+func (s *ReplaySource) TruthCursor() *TruthCursor {
+	if s.Truth == nil {
+		return nil
+	}
+	return &TruthCursor{truth: s.Truth, at: make([]int, len(s.Truth))}
+}
+
+// At writes to dst the true value of each state at t — its latest true
+// sample at or before t, NaN before the first — for times that do not
+// decrease from call to call. It allocates nothing.
+func (c *TruthCursor) At(t time.Time, dst []float64) {
+	for i, ts := range c.truth {
+		for c.at[i] < len(ts) && !ts[c.at[i]].Time.After(t) {
+			c.at[i]++
+		}
+		dst[i] = math.NaN()
+		if c.at[i] > 0 {
+			dst[i] = ts[c.at[i]-1].Value
+		}
+	}
+}
+
 func (s *ReplaySource) addTruth(n, i int, t time.Time, v float64) {
 	if s.Truth == nil {
 		s.Truth = make([][]TruthSample, n)
@@ -234,8 +264,9 @@ type ReplayOptions struct {
 	// the index of its gain set, the tick's number from 0 and its estimate,
 	// which is reused: copy what you keep.
 	Tick func(set, k int, est *Estimate)
-	// Progress, when not nil, is called about a hundred times during the
-	// replay and once at the end, with the ticks done and their total.
+	// Progress, when not nil, is called before the first tick (with 0
+	// done), about a hundred times during the replay and at the end, with
+	// the ticks done and their total.
 	Progress func(done, total int)
 }
 
@@ -347,13 +378,17 @@ func Replay(plant *config.Plant, sets []*estimator.Prepared, src *ReplaySource, 
 	accepted := make([]int, m+p)
 
 	var truth [][]float64
-	var truthAt []int
-	if src.Truth != nil {
+	var truthNow []float64
+	cursor := src.TruthCursor()
+	if cursor != nil {
 		truth = make([][]float64, len(src.Truth))
-		truthAt = make([]int, len(src.Truth))
+		truthNow = make([]float64, len(src.Truth))
 		for i := range truth {
 			truth[i] = make([]float64, ticks)
 		}
+	}
+	if opts.Progress != nil {
+		opts.Progress(0, ticks)
 	}
 
 	every := max(1, ticks/100)
@@ -395,14 +430,10 @@ func Replay(plant *config.Plant, sets []*estimator.Prepared, src *ReplaySource, 
 				opts.Tick(i, k, ests[i])
 			}
 		}
-		for i, col := range truth {
-			ts := src.Truth[i]
-			for truthAt[i] < len(ts) && !ts[truthAt[i]].Time.After(t) {
-				truthAt[i]++
-			}
-			col[k] = math.NaN()
-			if truthAt[i] > 0 {
-				col[k] = ts[truthAt[i]-1].Value
+		if cursor != nil {
+			cursor.At(t, truthNow)
+			for i, col := range truth {
+				col[k] = truthNow[i]
 			}
 		}
 		if opts.Progress != nil && (k+1)%every == 0 {
