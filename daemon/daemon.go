@@ -209,8 +209,9 @@ type Daemon struct {
 
 	// epoch is read by New; tick and start times are kept as nanoseconds
 	// since it (monotonic).
-	epoch   time.Time
-	started atomic.Int64 // when Run started, 0 before
+	epoch     time.Time
+	started   atomic.Int64 // when Run started, 0 before
+	scheduled atomic.Int64 // when the scheduler started, 0 before
 
 	// listeners are the in-process subscribers to estimates (OnEstimate):
 	// nil when there are none, so that a tick without listeners costs one
@@ -282,12 +283,12 @@ func New(opts Options) (*Daemon, error) {
 		return nil, err
 	}
 	d.http, err = NewHTTPServer(HTTPOptions{
-		Addr:     opts.Listen,
-		Gatherer: reg,
-		LastTick: d.oldestTick,
-		Period:   longest,
-		Ready:    d.missing,
-		Log:      d.log,
+		Addr:      opts.Listen,
+		Gatherer:  reg,
+		LastTick:  d.oldestTick,
+		Staleness: stallLimit(longest),
+		Ready:     d.missing,
+		Log:       d.log,
 	})
 	if err != nil {
 		return nil, err
@@ -401,6 +402,13 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 			return ep, err
 		}
 	}
+	// A round trip, so that the server has every subscription when Started
+	// says so. Without a connection yet, they are sent on connecting.
+	if nc := bus.Conn(); nc.IsConnected() {
+		if err := nc.FlushTimeout(drainTimeout); err != nil {
+			d.log.Warn("bus: subscriptions not confirmed by the server", "error", err)
+		}
+	}
 	if err := d.startCommissioning(g, bus.Conn()); err != nil {
 		return ep, err
 	}
@@ -418,6 +426,7 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 	for _, e := range d.estimators {
 		d.sched.Add(e.name, e.period, e.tick)
 	}
+	d.scheduled.Store(d.now())
 	g.Go("scheduler", func(context.Context) error {
 		defer close(d.schedDone)
 		return d.sched.Run(schedCtx)
@@ -511,23 +520,36 @@ func (d *Daemon) watchdog(ctx context.Context, every time.Duration) {
 // busConnected reports whether the bus is connected now.
 func (d *Daemon) busConnected() bool { return d.bus != nil && d.bus.Conn().IsConnected() }
 
+// minStall is the shortest time without a tick that counts as a stall, so
+// that a fast estimator is not declared dead over a garbage-collection pause
+// or a busy machine.
+const minStall = time.Second
+
+// stallLimit is how long an estimator of the given period may go without a
+// tick before the daemon is unhealthy: three periods, at least minStall.
+func stallLimit(period time.Duration) time.Duration { return max(3*period, minStall) }
+
 // Healthy returns nil while the tick loop advances: every estimator has
-// started a tick within three of its periods (before its first tick, since
-// Run started). A bus outage does not make the daemon unhealthy: it keeps
-// ticking, coasting, and a restart would not bring the bus back.
+// started a tick within stallLimit of its period (before its first tick,
+// since the scheduler started). A bus outage does not make the daemon
+// unhealthy: it keeps ticking, coasting, and a restart would not bring the
+// bus back.
 func (d *Daemon) Healthy() error {
-	start := d.started.Load()
-	if start == 0 {
+	if d.started.Load() == 0 {
 		return errors.New("not running")
+	}
+	sched := d.scheduled.Load()
+	if sched == 0 {
+		return nil // starting: the scheduler has not started yet
 	}
 	now := d.now()
 	var errs []error
 	for _, e := range d.estimators {
 		last := e.lastTick.Load()
 		if last == 0 {
-			last = start
+			last = sched
 		}
-		if age := time.Duration(now - last); age > 3*e.period {
+		if age := time.Duration(now - last); age > stallLimit(e.period) {
 			errs = append(errs, fmt.Errorf("estimator %s: no tick for %v (period %v)", e.name, age.Round(time.Millisecond), e.period))
 		}
 	}
@@ -535,14 +557,19 @@ func (d *Daemon) Healthy() error {
 }
 
 // oldestTick returns the start of the oldest of the estimators' latest
-// ticks, the zero time while one has not ticked yet: /healthz fails when it
-// is older than three of the longest period.
+// ticks, counting the start of the scheduler for an estimator that has not
+// ticked yet, and now while the daemon is starting: /healthz fails when it
+// is older than stallLimit of the longest period.
 func (d *Daemon) oldestTick() time.Time {
+	sched := d.scheduled.Load()
+	if sched == 0 {
+		return time.Now()
+	}
 	oldest := int64(0)
 	for i, e := range d.estimators {
 		last := e.lastTick.Load()
 		if last == 0 {
-			return time.Time{}
+			last = sched
 		}
 		if i == 0 || last < oldest {
 			oldest = last

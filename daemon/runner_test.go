@@ -112,3 +112,48 @@ func BenchmarkTick(b *testing.B) {
 		e.tick(Tick{Seq: uint64(k), Due: due, Start: due})
 	}
 }
+
+// TestHealthy checks the stall rule of Healthy and /healthz's oldestTick on
+// a daemon whose clock readings are set by hand: the demo plant ticks every
+// second, so a stall is 3 s without a tick.
+func TestHealthy(t *testing.T) {
+	d := dmnDemoDaemon(t)
+	e := d.estimators[0]
+	if err := d.Healthy(); err == nil {
+		t.Error("healthy before Run")
+	}
+	d.epoch = d.epoch.Add(-time.Hour) // room for readings in the past
+	now := d.now()
+	d.started.Store(now - int64(10*time.Second))
+	if err := d.Healthy(); err != nil {
+		t.Errorf("starting (no scheduler yet): %v, want healthy", err)
+	}
+	for _, tc := range []struct {
+		name            string
+		scheduled, last time.Duration // before now; last 0: no tick yet
+		healthy         bool
+	}{
+		{"first tick due", 2 * time.Second, 0, true},
+		{"no first tick for 4 s", 4 * time.Second, 0, false},
+		{"ticked 2 s ago", 60 * time.Second, 2 * time.Second, true},
+		{"no tick for 4 s", 60 * time.Second, 4 * time.Second, false},
+	} {
+		now := d.now()
+		d.scheduled.Store(now - int64(tc.scheduled))
+		e.lastTick.Store(0)
+		if tc.last > 0 {
+			e.lastTick.Store(now - int64(tc.last))
+		}
+		err := d.Healthy()
+		if (err == nil) != tc.healthy {
+			t.Errorf("%s: Healthy() = %v, want healthy %v", tc.name, err, tc.healthy)
+		}
+		want := tc.last
+		if want == 0 {
+			want = tc.scheduled
+		}
+		if age := time.Since(d.oldestTick()); age < want || age > want+time.Second {
+			t.Errorf("%s: oldestTick is %v ago, want %v", tc.name, age, want)
+		}
+	}
+}
