@@ -234,7 +234,8 @@ type Daemon struct {
 
 // New checks opts, prepares every plant's active gain set, registers the
 // metrics and builds one engine per plant. It starts no goroutine and opens
-// nothing: Run does. When it fails, it has registered nothing.
+// nothing: Run does. When it refuses the options or a gain set, it has
+// registered nothing.
 func New(opts Options) (*Daemon, error) {
 	opts.Plants = slices.Clone(opts.Plants)
 	opts.setDefaults()
