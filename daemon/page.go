@@ -596,8 +596,9 @@ func (pe *pageEst) info() pageInfo {
 	return in
 }
 
-// formatPole writes an eigenvalue with four significant digits: "0.997",
-// "0.95 ± 0.031i" is written as two entries, "0.95+0.031i" and "0.95-0.031i".
+// formatPole writes an eigenvalue with four significant digits: "0.997" for
+// a real one, "0.95+0.031i (|z| 0.9505)" for a complex one, each of a
+// conjugate pair written on its own.
 func formatPole(z complex128) string {
 	re := strconv.FormatFloat(real(z), 'g', 4, 64)
 	if imag(z) == 0 {
