@@ -319,7 +319,19 @@ type Outcome struct {
 	NIS float64
 	// Dof is the number of outputs NIS was computed with.
 	Dof int
+	// GateReleased is true when the gate was set aside this tick because it
+	// had rejected every present output on the GateRelease ticks before.
+	GateReleased bool
 }
+
+// GateRelease is the number of consecutive ticks on which the outlier gate
+// rejects every present output before the next tick corrects without the
+// gate. A gate protects a converged estimate from a bad sample; once the
+// estimate itself is far off (a start far from the truth, a plant step the
+// model did not foresee) every sample looks like an outlier, and a gate that
+// never relents would leave the filter coasting for good. Releasing it after
+// a short run of total rejections is common practice in tracking.
+const GateRelease = 10
 
 // Filter runs one estimator, tick by tick. Build it with NewFilter; it
 // allocates all its buffers there, and Step, the read-outs, Use and Reset
@@ -339,6 +351,10 @@ type Filter struct {
 	uPrev []float64 // u(k−1) − U0
 	du    []float64 // u(k) − U0
 	first bool      // the next Step does not predict
+	// rejected counts consecutive ticks on which the gate rejected every
+	// present output; thr is the gate of the current Step (nil: off).
+	rejected int
+	thr      []float64
 
 	yhat   []float64 // C·x̂(k|k−1) + D·(u(k) − U0)
 	r      []float64 // innovation per output; valid for the outputs in used
@@ -433,6 +449,7 @@ func (f *Filter) Reset(x0 []float64, p0 mat.Symmetric) {
 	clear(f.du)
 	f.hasP = false
 	f.first = true
+	f.rejected = 0
 	f.used = 0
 	f.svOK, f.svGain = false, nil
 	flatMulVec(f.yhat, f.pr.c, f.x)
@@ -499,6 +516,8 @@ func (f *Filter) Prepared() *Prepared { return f.pr }
 //     C_s·P⁻·C_sᵀ + R_s), NIS = rᵀS_s⁻¹r.
 //  3. Gate: while NIS exceeds χ²_k(gate), k the outputs left, drop the
 //     output with the largest r_i²/S_ii and recompute NIS for the rest.
+//     After GateRelease ticks on which the gate rejected every present
+//     output, the next tick corrects without it (Outcome.GateReleased).
 //  4. Correct: Current x̂(k|k) = x̂(k|k−1) + L·r; Prediction keeps
 //     x̂(k|k−1) as its estimate and L·r for the next prediction; a fixed gain
 //     is used only if the set has one for exactly the outputs left, else the
@@ -547,6 +566,10 @@ func (f *Filter) Step(u, y []float64, present Pattern) Outcome {
 
 	// 3 and 4.
 	var out Outcome
+	f.thr = pr.thr
+	if f.thr != nil && f.rejected >= GateRelease {
+		f.thr, out.GateReleased = nil, true
+	}
 	f.svOK, f.svGain = false, nil
 	if pr.form == Kalman {
 		f.correctKalman(pat, &out)
@@ -566,7 +589,7 @@ func (f *Filter) Step(u, y []float64, present Pattern) Outcome {
 			z[i] = v
 			nis += v * v
 		}
-		if pr.thr != nil && nis > pr.thr[k] {
+		if f.thr != nil && nis > f.thr[k] {
 			f.correctFixed(pat, &out)
 		} else {
 			out.HasNIS, out.NIS, out.Dof = true, nis, k
@@ -583,6 +606,11 @@ func (f *Filter) Step(u, y []float64, present Pattern) Outcome {
 		f.correctFixed(pat, &out)
 	}
 	f.used = out.Used
+	if out.Outliers != 0 && !out.Corrected {
+		f.rejected++
+	} else {
+		f.rejected = 0
+	}
 	f.uPrev, f.du = f.du, f.uPrev
 	return out
 }
@@ -613,7 +641,7 @@ func (f *Filter) correctFixed(pat Pattern, out *Outcome) {
 				z[i] = v
 				nis += v * v
 			}
-			if pr.thr != nil && nis > pr.thr[k] {
+			if f.thr != nil && nis > f.thr[k] {
 				worst, wv := 0, -1.0
 				for l, v := range rs {
 					if e := v * v / g.sDiag[l]; e > wv {
@@ -712,7 +740,7 @@ func (f *Filter) correctKalman(pat Pattern, out *Outcome) {
 			rs[a] = f.r[idx[la]]
 		}
 		nis = flatForwardNorm(f.z[:ka], ch, nil, rs)
-		if pr.thr == nil || !(nis > pr.thr[ka]) {
+		if f.thr == nil || !(nis > f.thr[ka]) {
 			break
 		}
 		worst, wv := 0, -1.0

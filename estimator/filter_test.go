@@ -930,3 +930,66 @@ func TestFilterPanics(t *testing.T) {
 		})
 	}
 }
+
+func TestGateRelease(t *testing.T) {
+	// A filter started far from the truth sees every sample as an outlier.
+	// After GateRelease ticks without a correction the gate is set aside for
+	// one tick, and the filter pulls in (re-acquiring after a run of gate
+	// misses is common practice in tracking).
+	md := threeModel()
+	_, post, s, kc := refRiccati(md.A, md.C, md.Q, md.R, 300)
+	// The time-varying Kalman filter's covariance grows while it coasts,
+	// which widens the gate by itself: for it the release is a fallback and
+	// only convergence is checked.
+	sets := []struct {
+		g     *GainSet
+		fixed bool
+	}{
+		{&GainSet{Name: "current", Form: Current, Gains: []PatternGain{{Outputs: 3, L: kc, S: symOf(s), P: symOf(post)}}}, true},
+		{&GainSet{Name: "kalman", Form: Kalman}, false},
+	}
+	for _, c := range sets {
+		g := c.g
+		t.Run(g.Name, func(t *testing.T) {
+			pr := mustPrepare(t, md, g, 0.999)
+			// The plant starts 50 standard deviations of the first
+			// measurement away from where the filter starts.
+			x0 := []float64{20 + 50*math.Sqrt(s.At(0, 0)), 1, -3 - 50*math.Sqrt(s.At(1, 1))}
+			pl := NewPlant(md, 11, x0)
+			f := NewFilter(pr, nil, nil)
+			u, y := []float64{10}, make([]float64, 2)
+			released := -1
+			for k := 0; k < 400; k++ {
+				pl.Step(u)
+				pl.OutputTo(y)
+				out := f.Step(u, y, 3)
+				switch {
+				case !c.fixed:
+				case k < GateRelease:
+					if out.Corrected || out.Outliers == 0 || out.GateReleased {
+						t.Fatalf("tick %d: outcome %+v, want every output rejected", k, out)
+					}
+				case out.GateReleased && released < 0:
+					released = k
+					if !out.Corrected || out.Outliers != 0 {
+						t.Fatalf("tick %d: released gate, outcome %+v, want a correction with every output", k, out)
+					}
+				}
+			}
+			if c.fixed && released != GateRelease {
+				t.Fatalf("gate released first at tick %d, want %d", released, GateRelease)
+			}
+			x, truth, sd := make([]float64, 3), make([]float64, 3), make([]float64, 3)
+			f.StateTo(x)
+			pl.StateTo(truth)
+			if !f.StdTo(sd) {
+				t.Fatal("no standard deviation")
+			}
+			for i := range x {
+				if e := math.Abs(x[i] - truth[i]); e > 5*sd[i] {
+					t.Errorf("state %d after 400 ticks: error %.4g, more than 5σ = %.4g", i, e, 5*sd[i])
+				}
+			}
+		})
+	}
+}
