@@ -2,6 +2,7 @@ package daemon
 
 import (
 	"encoding/json"
+	"errors"
 	"math"
 	"os"
 	"path/filepath"
@@ -242,4 +243,56 @@ func TestNumberJSON(t *testing.T) {
 	if err := json.Unmarshal([]byte(`"x"`), &n); err == nil {
 		t.Error(`"x" read as a number`)
 	}
+}
+
+// FuzzControlBodies feeds arbitrary bodies to the promote and reset
+// decoding and to Reset: a request is accepted or refused as a bad request,
+// never a panic, and an accepted reset runs a tick.
+func FuzzControlBodies(f *testing.F) {
+	for _, s := range []string{``, `{}`, `{"transfer":"adopt-state","confirm":true}`, `{"transfer":"keep-state"}`,
+		`{"state":{"position":2},"std":{"position":1,"velocity":1}}`, `{"covariance":[[1,0],[0,1]]}`,
+		`{"state":{"velocity":-1e308}}`, `{"covariance":[[1,0.5],[0.5]]}`, `{"std":{"position":-1}}`} {
+		f.Add([]byte(s))
+	}
+	r := newCMRig(f, cmRigOptions{active: "fast", candidate: "kalman", dwell: -1})
+	r.tick()
+	f.Fuzz(func(t *testing.T, body []byte) {
+		var pr PromoteRequest
+		if err := decodeBody(body, &pr); err != nil {
+			var ce *CommissionError
+			if !errors.As(err, &ce) || ce.Code != CodeBadRequest {
+				t.Fatalf("promote body %q: %v", body, err)
+			}
+		}
+		var rr ResetRequest
+		if err := decodeBody(body, &rr); err != nil {
+			return
+		}
+		if _, err := r.c.Reset(rr, Origin{}); err != nil {
+			var ce *CommissionError
+			if !errors.As(err, &ce) || ce.Code != CodeBadRequest {
+				t.Fatalf("reset %q: %v", body, err)
+			}
+			return
+		}
+		r.tick()
+	})
+}
+
+// FuzzRequestOrigin: any header and reply subject give an origin of one of
+// the two kinds.
+func FuzzRequestOrigin(f *testing.F) {
+	f.Add(`{"acc":"ENG","user":"ann","name":"x","host":"10.0.0.7","id":42}`, "_INBOX.abc", "ann@bench")
+	f.Add(`{"acc":`, "", "")
+	f.Add(`[]`, "_INBOX.x", "")
+	f.Fuzz(func(t *testing.T, info, reply, claimed string) {
+		h := micro.Headers{HeaderRequestInfo: {info}, HeaderOperator: {claimed}}
+		o := RequestOrigin(h, reply)
+		if !strings.HasPrefix(o.Who, "request-info: ") && o.Who != "reply-subject: "+reply {
+			t.Fatalf("origin %q", o.Who)
+		}
+		if o.Claimed != claimed {
+			t.Fatalf("claimed %q, want %q", o.Claimed, claimed)
+		}
+	})
 }

@@ -379,3 +379,30 @@ func TestReset(t *testing.T) {
 		t.Errorf("audit %+v", tail)
 	}
 }
+
+// TestTickWithShadowAllocs: a tick with a candidate lane, the candidate's
+// estimate and the commissioner's view of both allocate nothing (after the
+// windows have filled and their bands are cached).
+func TestTickWithShadowAllocs(t *testing.T) {
+	r := shadowRig(t, "kalman", 0)
+	for k := 0; k < 400; k++ {
+		r.tick()
+	}
+	if !r.hasCand {
+		t.Fatal("no candidate lane")
+	}
+	if a := testing.AllocsPerRun(200, r.tick); a != 0 {
+		t.Errorf("%v allocations per tick with a shadow lane, want 0", a)
+	}
+}
+
+func BenchmarkTickWithShadow(b *testing.B) {
+	r := shadowRig(b, "kalman", 0)
+	for k := 0; k < 400; k++ {
+		r.tick()
+	}
+	b.ReportAllocs()
+	for b.Loop() {
+		r.tick()
+	}
+}

@@ -3,6 +3,8 @@ package main
 import (
 	"context"
 	"encoding/json"
+	"errors"
+	"math"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -332,4 +334,30 @@ func TestRunSIGHUP(t *testing.T) {
 	case <-time.After(20 * time.Second):
 		t.Fatal("no exit 20 s after SIGTERM")
 	}
+}
+
+// FuzzCtlNameValues: NAME=VALUE lists parse to finite numbers under unique
+// names, or are refused as usage errors.
+func FuzzCtlNameValues(f *testing.F) {
+	for _, s := range []string{"position=5", "a=1,b=-2e-3", "x", "=1", "v=NaN", "v=1e999", "a=1,a=2"} {
+		f.Add(s)
+	}
+	f.Fuzz(func(t *testing.T, s string) {
+		list := strings.Split(s, ",")
+		m, err := ctlNameValues("--state", list)
+		if err != nil {
+			if !errors.Is(err, errUsage) {
+				t.Fatalf("%q: %v is not a usage error", s, err)
+			}
+			return
+		}
+		if len(m) != len(list) {
+			t.Fatalf("%q: %d values from %d items", s, len(m), len(list))
+		}
+		for k, v := range m {
+			if k == "" || math.IsNaN(v) || math.IsInf(v, 0) {
+				t.Fatalf("%q: %q = %v", s, k, v)
+			}
+		}
+	})
 }
