@@ -221,7 +221,7 @@ func (c *Commissioner) Promote(req PromoteRequest, who Origin) (*PromoteReply, e
 	if c.cand == nil {
 		return nil, refusal(CodeRefused, "no candidate gain set runs in shadow: nothing to promote")
 	}
-	if err := c.checkDwell("promote"); err != nil {
+	if err := c.checkDwell(); err != nil {
 		return nil, err
 	}
 	reply := &PromoteReply{Transfer: tr, Active: c.cand.ref(c.fingerprint), Previous: c.active.ref(c.fingerprint)}
@@ -260,13 +260,13 @@ func (c *Commissioner) Promote(req PromoteRequest, who Origin) (*PromoteReply, e
 }
 
 // checkDwell refuses a swap within the minimum dwell time of the previous one.
-func (c *Commissioner) checkDwell(what string) *CommissionError {
+func (c *Commissioner) checkDwell() *CommissionError {
 	if c.dwell <= 0 || c.lastSwap.IsZero() {
 		return nil
 	}
 	if since := c.now().Sub(c.lastSwap); since < c.dwell {
-		return refusal(CodeRefused, "%s refused: the active set changed %.3g s ago, the minimum dwell time is %v; try again in %.3g s",
-			what, since.Seconds(), c.dwell, (c.dwell - since).Seconds())
+		return refusal(CodeRefused, "the active set changed %.3g s ago and the minimum dwell time between swaps is %v: try again in %.3g s",
+			since.Seconds(), c.dwell, (c.dwell - since).Seconds())
 	}
 	return nil
 }
@@ -310,7 +310,7 @@ func (c *Commissioner) Rollback(who Origin) (*RollbackReply, error) {
 	if c.prev == nil {
 		return nil, refusal(CodeRefused, "no previous active set: nothing to roll back to")
 	}
-	if err := c.checkDwell("rollback"); err != nil {
+	if err := c.checkDwell(); err != nil {
 		return nil, err
 	}
 	old, back := c.active, c.prev
