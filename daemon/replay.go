@@ -32,7 +32,8 @@ func TruthColumn(state string) string { return "truth." + state }
 // ReplaySource is a recording prepared for Replay: the samples of the plant's
 // wired signals in the order they were received, the true states when the
 // recording has them, and every issue found in reading and preparing it.
-// Build it with NewCSVSource or NewBusSource.
+// Build it with NewCSVSource or NewBusSource. A source serves one Replay at
+// a time.
 type ReplaySource struct {
 	// Name is the recording's name, for messages.
 	Name string
@@ -45,17 +46,27 @@ type ReplaySource struct {
 	Truth [][]TruthSample
 
 	first, last time.Time // receive times of the first and last sample
-	samples     []ReplaySample
+	n           int       // samples of wired signals
+
+	// A bus recording's samples, decoded; or a CSV recording's, read in
+	// place.
+	samples []replaySample
+	csv     []recording.Sample
+	cols    csvColumns
 }
 
-// ReplaySample is one sample of a wired signal, as Replay offers it.
-type ReplaySample struct {
-	Signal int       // the engine's index: the plant's inputs, then its outputs
-	Value  float64   // as decoded; the engine judges its range
-	Time   time.Time // the sample's own time (the payload's, else Recv)
-	Recv   time.Time // when it was received (for a CSV row, its time)
-	Line   int       // the line of the recording
+// replaySample is one sample of a wired signal, as Replay offers it, in 32
+// bytes: a day at 10 Hz of five signals is 4.3 million of them.
+type replaySample struct {
+	signal   int32 // the engine's index: the plant's inputs, then its outputs
+	line     int32 // the line of the recording
+	value    float64
+	at, recv int64 // the sample's own time and its receive time, Unix nanoseconds
 }
+
+// nanos returns t in Unix nanoseconds; recordings lie well inside the
+// years 1678 to 2262 that this covers.
+func nanos(t time.Time) int64 { return t.UnixNano() }
 
 // TruthSample is one true value of a state in a recording.
 type TruthSample struct {
@@ -63,8 +74,13 @@ type TruthSample struct {
 	Value float64
 }
 
+// lineOf narrows a line number to the 32 bits a sample keeps of it.
+func lineOf(line int) int32 {
+	return int32(min(line, math.MaxInt32))
+}
+
 // Len returns the number of samples of wired signals.
-func (s *ReplaySource) Len() int { return len(s.samples) }
+func (s *ReplaySource) Len() int { return s.n }
 
 // wiring maps the names a recording uses to the engine's signals and the
 // model's states.
@@ -121,28 +137,35 @@ type skipped struct {
 // Each row's time is both the sample time and the receive time. Columns
 // named after an input or output are samples, columns named
 // TruthColumn(state) the true states; any other column is skipped, with one
-// issue (ReadCSV reports them already when given CSVColumns as Known).
+// issue (ReadCSV reports them already when given CSVColumns as Known). The
+// source reads the recording's samples in place: rec must not change while
+// the source is in use.
 func NewCSVSource(plant *config.Plant, rec *recording.Recording) *ReplaySource {
-	src := &ReplaySource{Name: rec.Name, Issues: append([]recording.Issue(nil), rec.Issues...)}
+	src := &ReplaySource{Name: rec.Name, Issues: append([]recording.Issue(nil), rec.Issues...), csv: rec.Samples}
 	w := newWiring(plant, false)
-	src.samples = make([]ReplaySample, 0, len(rec.Samples))
+	src.cols.index = map[string]int{}
 	other := map[string]*skipped{}
 	var order []string
+	first := true
 	for i := range rec.Samples {
 		s := &rec.Samples[i]
-		if j, ok := w.signal[s.Signal]; ok {
-			src.samples = append(src.samples, ReplaySample{Signal: j, Value: s.Value, Time: s.Time, Recv: s.Time, Line: s.Line})
-			continue
-		}
-		if j, ok := w.truth[s.Signal]; ok {
-			src.addTruth(w.n, j, s.Time, s.Value)
-			continue
-		}
-		if sk := other[s.Signal]; sk != nil {
-			sk.n++
-		} else {
-			other[s.Signal] = &skipped{line: s.Line, n: 1}
-			order = append(order, s.Signal)
+		c := src.cols.lookup(s.Signal, &w)
+		switch {
+		case c.signal >= 0:
+			src.n++
+			if first {
+				src.first, first = s.Time, false
+			}
+			src.last = s.Time
+		case c.state >= 0:
+			src.addTruth(w.n, c.state, s.Time, s.Value)
+		default:
+			if sk := other[s.Signal]; sk != nil {
+				sk.n++
+			} else {
+				other[s.Signal] = &skipped{line: s.Line, n: 1}
+				order = append(order, s.Signal)
+			}
 		}
 	}
 	for _, name := range order {
@@ -154,6 +177,54 @@ func NewCSVSource(plant *config.Plant, rec *recording.Recording) *ReplaySource {
 	return src
 }
 
+// csvColumn is what one CSV column is for a plant.
+type csvColumn struct {
+	name          string
+	signal, state int // the engine's signal index or the state's, −1 when not one
+}
+
+// csvColumns finds the column of a sample by its signal name. The samples
+// of one column share its name's string, and a row's samples come in column
+// order, so the column after the previous sample's almost always matches,
+// by the strings' pointers, without hashing.
+type csvColumns struct {
+	cols  []csvColumn
+	index map[string]int // name → position in cols
+	prev  int
+}
+
+func (c *csvColumns) lookup(name string, w *wiring) *csvColumn {
+	if n := len(c.cols); n > 0 {
+		next := c.prev + 1
+		if next == n {
+			next = 0
+		}
+		if c.cols[next].name == name {
+			c.prev = next
+			return &c.cols[next]
+		}
+		if c.cols[c.prev].name == name {
+			return &c.cols[c.prev]
+		}
+	}
+	i, ok := c.index[name]
+	if !ok {
+		col := csvColumn{name: name, signal: -1, state: -1}
+		if w != nil {
+			if j, ok := w.signal[name]; ok {
+				col.signal = j
+			} else if j, ok := w.truth[name]; ok {
+				col.state = j
+			}
+		}
+		i = len(c.cols)
+		c.cols = append(c.cols, col)
+		c.index[name] = i
+	}
+	c.prev = i
+	return &c.cols[i]
+}
+
 // NewBusSource prepares a bus recording for a replay of plant: the
 // messages on the subjects of its inputs and outputs are samples (their
 // sample time is the payload's time when it has one, else the receive
@@ -163,7 +234,7 @@ func NewCSVSource(plant *config.Plant, rec *recording.Recording) *ReplaySource {
 func NewBusSource(plant *config.Plant, rec *recording.BusRecording) *ReplaySource {
 	src := &ReplaySource{Name: rec.Name, Issues: append([]recording.Issue(nil), rec.Issues...)}
 	w := newWiring(plant, true)
-	src.samples = make([]ReplaySample, 0, len(rec.Messages))
+	src.samples = make([]replaySample, 0, len(rec.Messages))
 	other := map[string]*skipped{}
 	var order []string
 	for i := range rec.Messages {
@@ -188,7 +259,7 @@ func NewBusSource(plant *config.Plant, rec *recording.BusRecording) *ReplaySourc
 			src.addTruth(w.n, k, at, v)
 			continue
 		}
-		src.samples = append(src.samples, ReplaySample{Signal: j, Value: v, Time: at, Recv: m.Recv, Line: m.Line})
+		src.samples = append(src.samples, replaySample{signal: int32(j), line: lineOf(m.Line), value: v, at: nanos(at), recv: nanos(m.Recv)})
 	}
 	for _, subj := range order {
 		sk := other[subj]
@@ -242,8 +313,11 @@ func (s *ReplaySource) finish() {
 	for _, ts := range s.Truth {
 		sort.SliceStable(ts, func(a, b int) bool { return ts[a].Time.Before(ts[b].Time) })
 	}
-	if len(s.samples) > 0 {
-		s.first, s.last = s.samples[0].Recv, s.samples[len(s.samples)-1].Recv
+	if s.csv == nil {
+		s.n = len(s.samples)
+		if s.n > 0 {
+			s.first, s.last = time.Unix(0, s.samples[0].recv), time.Unix(0, s.samples[s.n-1].recv)
+		}
 	}
 	sort.SliceStable(s.Issues, func(a, b int) bool { return s.Issues[a].Line < s.Issues[b].Line })
 }
@@ -319,10 +393,31 @@ func (c *SignalCount) RefusedTotal() int {
 	return n
 }
 
-// replayRefusal is the first sample refused for one reason of one signal.
-type replayRefusal struct {
-	line int
-	at   time.Time
+// replayState is what Replay keeps while it offers samples.
+type replayState struct {
+	engines  []*Engine
+	res      *ReplayResult
+	accepted []int             // per signal
+	first    [][numReasons]int // per signal and reason, the line of the first refused
+}
+
+// offer offers one sample to every engine and counts what the first made
+// of it.
+func (st *replayState) offer(sig int, v float64, at, recv time.Time, line int) {
+	c := &st.res.Signals[sig]
+	c.Offered++
+	r, ok := st.engines[0].Offer(sig, v, at, recv)
+	for _, e := range st.engines[1:] {
+		e.Offer(sig, v, at, recv)
+	}
+	if ok {
+		st.accepted[sig]++
+		return
+	}
+	if c.Refused[r] == 0 {
+		st.first[sig][r] = line
+	}
+	c.Refused[r]++
 }
 
 // Replay drives one engine per gain set over the source on virtual time,
@@ -339,7 +434,7 @@ func Replay(plant *config.Plant, sets []*estimator.Prepared, src *ReplaySource, 
 	if len(sets) == 0 {
 		return nil, errors.New("replay: no gain set to run")
 	}
-	if len(src.samples) == 0 {
+	if src.n == 0 {
 		return nil, fmt.Errorf("replay: %s holds no sample of a signal of plant %s", src.Name, plant.Name)
 	}
 	ts := periodOf(plant)
@@ -373,9 +468,7 @@ func Replay(plant *config.Plant, sets []*estimator.Prepared, src *ReplaySource, 
 		res.Signals[i].Name = engines[0].SignalName(i)
 		res.Signals[i].Output = i >= m
 	}
-	var firstRefusal [][numReasons]replayRefusal
-	firstRefusal = make([][numReasons]replayRefusal, m+p)
-	accepted := make([]int, m+p)
+	st := replayState{engines: engines, res: res, accepted: make([]int, m+p), first: make([][numReasons]int, m+p)}
 
 	var truth [][]float64
 	var truthNow []float64
@@ -395,22 +488,19 @@ func Replay(plant *config.Plant, sets []*estimator.Prepared, src *ReplaySource, 
 	next := 0
 	for k := 0; k < ticks; k++ {
 		t := t0.Add(time.Duration(k) * ts)
-		for ; next < len(src.samples) && !src.samples[next].Recv.After(t); next++ {
-			s := &src.samples[next]
-			c := &res.Signals[s.Signal]
-			c.Offered++
-			r, ok := engines[0].Offer(s.Signal, s.Value, s.Time, s.Recv)
-			for _, e := range engines[1:] {
-				e.Offer(s.Signal, s.Value, s.Time, s.Recv)
+		if src.csv != nil {
+			for ; next < len(src.csv) && !src.csv[next].Time.After(t); next++ {
+				smp := &src.csv[next]
+				if c := src.cols.lookup(smp.Signal, nil); c.signal >= 0 {
+					st.offer(c.signal, smp.Value, smp.Time, smp.Time, smp.Line)
+				}
 			}
-			if ok {
-				accepted[s.Signal]++
-				continue
+		} else {
+			tn := nanos(t)
+			for ; next < len(src.samples) && src.samples[next].recv <= tn; next++ {
+				smp := &src.samples[next]
+				st.offer(int(smp.signal), smp.value, time.Unix(0, smp.at), time.Unix(0, smp.recv), int(smp.line))
 			}
-			if c.Refused[r] == 0 {
-				firstRefusal[s.Signal][r] = replayRefusal{line: s.Line, at: s.Time}
-			}
-			c.Refused[r]++
 		}
 		for i, e := range engines {
 			e.Tick(t, ests[i])
@@ -446,14 +536,19 @@ func Replay(plant *config.Plant, sets []*estimator.Prepared, src *ReplaySource, 
 	// Samples received after the last tick were never offered: with End
 	// given, the rest of the recording.
 	for ; next < len(src.samples); next++ {
-		res.Signals[src.samples[next].Signal].After++
+		res.Signals[src.samples[next].signal].After++
+	}
+	for ; next < len(src.csv); next++ {
+		if c := src.cols.lookup(src.csv[next].Signal, nil); c.signal >= 0 {
+			res.Signals[c.signal].After++
+		}
 	}
 	for i := range res.Signals {
 		c := &res.Signals[i]
 		if c.Output {
 			// Accepted samples a tick never took were replaced by a newer
 			// one (every sample offered is dated at or before the last tick).
-			c.Superseded = accepted[i] - c.Used - c.Stale
+			c.Superseded = st.accepted[i] - c.Used - c.Stale
 		}
 	}
 	res.Issues = append([]recording.Issue(nil), src.Issues...)
@@ -463,8 +558,7 @@ func Replay(plant *config.Plant, sets []*estimator.Prepared, src *ReplaySource, 
 			if c.Refused[r] == 0 {
 				continue
 			}
-			f := firstRefusal[i][r]
-			res.Issues = append(res.Issues, recording.Issue{Line: f.line, Column: c.Name,
+			res.Issues = append(res.Issues, recording.Issue{Line: st.first[i][r], Column: c.Name,
 				Msg: fmt.Sprintf("%d %s refused by the engine (%s)%s", c.Refused[r], replayPlural(c.Refused[r], "sample"), r, refusalHint(r))})
 		}
 	}
