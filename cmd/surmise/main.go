@@ -33,7 +33,10 @@ func verbs() []verb {
 	return []verb{
 		{"check", "report on a plant's model, its observability and its gain sets", runCheck},
 		{"ctl", "ask a running daemon for status, load gains, promote, roll back, reset", runCtl},
+		{"demo", "run the whole tool on an invented pilot plant, with no other service", runDemo},
 		{"design", "design observer or Kalman gains and write the gains file", runDesign},
+		{"record", "write bus traffic to a recording file (or a JetStream stream) for replay", runRecord},
+		{"replay", "run the tick engine on a recording and compare gain sets", runReplay},
 		{"run", "run the estimators of plant files on the NATS bus (the daemon)", runRun},
 		{"simulate", "publish a simulated plant's signals and true states, with scripted events", runSimulate},
 		{"version", "print the version and build information", runVersion},
