@@ -1,0 +1,145 @@
+package main
+
+import (
+	"bufio"
+	"bytes"
+	"net/http"
+	"os"
+	"os/exec"
+	"regexp"
+	"strings"
+	"sync/atomic"
+	"testing"
+	"time"
+
+	"github.com/nats-io/nats.go"
+)
+
+// TestDemoFilesAreTheTestdata checks that the plant and gains built into
+// the binary are the repository's demo files, byte for byte.
+func TestDemoFilesAreTheTestdata(t *testing.T) {
+	for name, built := range map[string][]byte{"hotwater-loop.yaml": demoPlantYAML, "hotwater-loop.gains.yaml": demoGainsYAML} {
+		want, err := os.ReadFile(plantPath(name))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if !bytes.Equal(built, want) {
+			t.Errorf("cmd/surmise/demo/%s differs from testdata/plants/%s: copy it again", name, name)
+		}
+	}
+	if _, _, err := demoPlant(); err != nil {
+		t.Fatal(err)
+	}
+}
+
+// TestDemo runs `surmise demo --for 5s --speed 20` as a process: it starts
+// in well under 2 s, a subscriber on its bus receives estimates and shadow
+// estimates, its HTTP health endpoint answers, it prints its lines and
+// exits 0.
+func TestDemo(t *testing.T) {
+	if buildErr != nil {
+		t.Fatal(buildErr)
+	}
+	cmd := exec.Command(binary, "demo", "--for", "5s", "--speed", "20", "--every", "1s", "--listen", "127.0.0.1:0", "--nats-port", "-1")
+	cmd.Dir = t.TempDir() // the demo needs no file of the repository
+	stdout, err := cmd.StdoutPipe()
+	if err != nil {
+		t.Fatal(err)
+	}
+	var stderr bytes.Buffer
+	cmd.Stderr = &stderr
+	began := time.Now()
+	if err := cmd.Start(); err != nil {
+		t.Fatal(err)
+	}
+	defer cmd.Process.Kill()
+	lines := make(chan string, 100)
+	go func() {
+		sc := bufio.NewScanner(stdout)
+		for sc.Scan() {
+			lines <- sc.Text()
+		}
+		close(lines)
+	}()
+	var out []string
+	next := func() string {
+		select {
+		case l, ok := <-lines:
+			if !ok {
+				t.Fatalf("the demo's output ended:\n%s\nstderr: %s", strings.Join(out, "\n"), stderr.String())
+			}
+			out = append(out, l)
+			return l
+		case <-time.After(20 * time.Second):
+			t.Fatalf("no line from the demo in 20 s:\n%s", strings.Join(out, "\n"))
+		}
+		return ""
+	}
+	busLine := regexp.MustCompile(`^NATS\s+(nats://127\.0\.0\.1:\d+) `)
+	httpLine := regexp.MustCompile(`^HTTP\s+http://(127\.0\.0\.1:\d+)/ `)
+	var url, addr string
+	for url == "" || addr == "" {
+		l := next()
+		if m := busLine.FindStringSubmatch(l); m != nil {
+			url = m[1]
+		}
+		if m := httpLine.FindStringSubmatch(l); m != nil {
+			addr = m[1]
+		}
+	}
+	startup := time.Since(began)
+	// The brief's bound, with the process start and a loaded test machine
+	// counted in: "well under 2 s".
+	if startup > 2*time.Second {
+		t.Errorf("the demo printed its endpoints %v after it was started, want under 2 s", startup)
+	}
+	nc, err := nats.Connect(url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer nc.Close()
+	var estimates, shadow atomic.Int64
+	if _, err := nc.Subscribe("surmise.hotwater-loop.estimate", func(*nats.Msg) { estimates.Add(1) }); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := nc.Subscribe("surmise.hotwater-loop.shadow.estimate", func(*nats.Msg) { shadow.Add(1) }); err != nil {
+		t.Fatal(err)
+	}
+	if err := nc.Flush(); err != nil {
+		t.Fatal(err)
+	}
+	resp, err := http.Get("http://" + addr + "/healthz")
+	if err != nil {
+		t.Fatal(err)
+	}
+	resp.Body.Close()
+	if resp.StatusCode != http.StatusOK {
+		t.Errorf("/healthz: %s", resp.Status)
+	}
+	for l := range lines {
+		out = append(out, l)
+	}
+	if err := cmd.Wait(); err != nil {
+		t.Fatalf("exit: %v\n%s\nstderr: %s", err, strings.Join(out, "\n"), stderr.String())
+	}
+	// A line a second: the plant time, the status, the NIS, the element
+	// temperature against the truth, the shadow.
+	compact := regexp.MustCompile(`^\s+\d+s\s+(tracking|coasting|stale-input|suspect)\s+NIS [\d.]+ \[[\d.]+, [\d.]+\]\s+element_temp [\d.]+ ± [\d.]+ degC \(true [\d.]+\)\s+\| shadow kalman-current`)
+	n := 0
+	for _, l := range out {
+		if compact.MatchString(l) {
+			n++
+		}
+	}
+	if n < 3 || !strings.HasPrefix(out[len(out)-1], "stopped after") {
+		t.Errorf("%d compact lines, last line %q:\n%s", n, out[len(out)-1], strings.Join(out, "\n"))
+	}
+	// A tick every 50 ms for about 5 s, less the start: about a hundred.
+	if n := estimates.Load(); n < 50 {
+		t.Errorf("%d estimates received, want at least 50", n)
+	}
+	if n := shadow.Load(); n < 50 {
+		t.Errorf("%d shadow estimates received, want at least 50", n)
+	}
+	t.Logf("endpoints printed after %v; %d estimates and %d shadow estimates received", startup.Round(time.Millisecond), estimates.Load(), shadow.Load())
+}
