@@ -1,6 +1,7 @@
 package daemon
 
 import (
+	"encoding/json"
 	"errors"
 	"fmt"
 	"math"
@@ -47,6 +48,10 @@ type ReplaySource struct {
 
 	first, last time.Time // receive times of the first and last sample
 	n           int       // samples of wired signals
+
+	bus          bool      // a bus recording
+	estimateTick time.Time // the time of the plant's first recorded estimate
+	estimates    int       // the plant's estimates in the recording (not replayed)
 
 	// A bus recording's samples, decoded; or a CSV recording's, read in
 	// place.
@@ -232,15 +237,31 @@ func (c *csvColumns) lookup(name string, w *wiring) *csvColumn {
 // not decode is an issue with its line, and so are the messages of a
 // subject that is neither (one issue per subject).
 func NewBusSource(plant *config.Plant, rec *recording.BusRecording) *ReplaySource {
-	src := &ReplaySource{Name: rec.Name, Issues: append([]recording.Issue(nil), rec.Issues...)}
+	src := &ReplaySource{Name: rec.Name, Issues: append([]recording.Issue(nil), rec.Issues...), bus: true}
 	w := newWiring(plant, true)
 	src.samples = make([]replaySample, 0, len(rec.Messages))
 	other := map[string]*skipped{}
 	var order []string
+	estimates := EstimateSubject(plant)
+	shadow := ShadowSubject(estimates)
 	for i := range rec.Messages {
 		m := &rec.Messages[i]
 		j, isSignal := w.signal[m.Subject]
 		k, isTruth := w.truth[m.Subject]
+		if m.Subject == estimates || m.Subject == shadow {
+			// The estimator's own output: the first tells the phase of its
+			// ticks; none is replayed.
+			if m.Subject == estimates && src.estimateTick.IsZero() {
+				var est struct {
+					Time time.Time `json:"time"`
+				}
+				if json.Unmarshal(m.Payload, &est) == nil && !est.Time.IsZero() {
+					src.estimateTick = est.Time
+				}
+			}
+			src.estimates++
+			continue
+		}
 		if !isSignal && !isTruth {
 			if sk := other[m.Subject]; sk != nil {
 				sk.n++
@@ -322,12 +343,50 @@ func (s *ReplaySource) finish() {
 	sort.SliceStable(s.Issues, func(a, b int) bool { return s.Issues[a].Line < s.Issues[b].Line })
 }
 
-// ReplayOptions are the settings of Replay. The zero value ticks from the
-// first sample to the last.
+// FirstTick returns the time of the first tick Replay uses when
+// ReplayOptions.Start is zero, and how it was chosen:
+//
+//   - a bus recording that holds the plant's own estimates: the first
+//     estimate's time, so that the ticks fall where the recorded daemon's
+//     did (and the replay reproduces its estimates once its state has
+//     converged from the initial one);
+//   - another bus recording: half a sample period after the samples'
+//     typical arrival (the circular mean of their receive times modulo the
+//     period), so that each sample arrives well before the tick it belongs
+//     to — ticks right at the arrival times would find the samples of one
+//     burst on either side of them;
+//   - a CSV recording: the first row's time, whose samples the first tick
+//     takes.
+func (s *ReplaySource) FirstTick(plant *config.Plant) (time.Time, string) {
+	switch {
+	case !s.bus:
+		return s.first, "the first row's time"
+	case !s.estimateTick.IsZero():
+		return s.estimateTick, fmt.Sprintf("the time of the first of %d estimates in the recording", s.estimates)
+	case s.n == 0:
+		return s.first, "the first sample's receive time"
+	}
+	ts := float64(periodOf(plant))
+	if ts <= 0 {
+		return s.first, "the first sample's receive time"
+	}
+	var c, sn float64
+	for i := range s.samples {
+		phase := math.Mod(float64(s.samples[i].recv-s.samples[0].recv), ts) / ts * 2 * math.Pi
+		c += math.Cos(phase)
+		sn += math.Sin(phase)
+	}
+	arrival := math.Atan2(sn, c) / (2 * math.Pi) // in (−½, ½] periods
+	offset := math.Mod(arrival+0.5+1, 1)         // half a period later, in [0, 1)
+	return s.first.Add(time.Duration(offset * ts)), fmt.Sprintf("half a period after the samples' typical arrival, %v after the first", time.Duration(offset*ts).Round(time.Microsecond))
+}
+
+// ReplayOptions are the settings of Replay. The zero value ticks from
+// ReplaySource.FirstTick to the last sample.
 type ReplayOptions struct {
-	// Start is the time of the first tick; zero means the receive time of
-	// the first sample. The samples received before it are offered before
-	// the first tick.
+	// Start is the time of the first tick; zero means
+	// ReplaySource.FirstTick. The samples received before it are offered
+	// before the first tick.
 	Start time.Time
 	// End is the time at or after which the last tick falls; zero means the
 	// receive time of the last sample.
@@ -443,13 +502,16 @@ func Replay(plant *config.Plant, sets []*estimator.Prepared, src *ReplaySource, 
 	}
 	t0, end := opts.Start, opts.End
 	if t0.IsZero() {
-		t0 = src.first
+		t0, _ = src.FirstTick(plant)
 	}
 	if end.IsZero() {
 		end = src.last
 	}
 	if end.Before(t0) {
-		return nil, fmt.Errorf("replay: the end %v is before the first tick %v", end, t0)
+		if !opts.End.IsZero() {
+			return nil, fmt.Errorf("replay: the end %v is before the first tick %v", end, t0)
+		}
+		end = t0 // a recording shorter than the offset of the first tick
 	}
 	span := end.Sub(t0)
 	ticks := int(span/ts) + 1

@@ -351,7 +351,7 @@ func TestReplayBusIssues(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	res, err := daemon.Replay(plant, sets, daemon.NewBusSource(plant, br), daemon.ReplayOptions{})
+	res, err := daemon.Replay(plant, sets, daemon.NewBusSource(plant, br), daemon.ReplayOptions{Start: t0})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -384,5 +384,85 @@ func TestReplayBusIssues(t *testing.T) {
 	}
 	if got, want := res.Signals[2].String(), "hx_outlet: 11 offered, 1 refused (late 1), 10 used, 0 stale, 0 superseded"; got != want {
 		t.Errorf("got  %s\nwant %s", got, want)
+	}
+}
+
+// TestReplayFirstTick checks where the ticks of a replay fall when no start
+// is given: on a recording's own estimates, else half a period after the
+// samples' arrival, and on a CSV's first row.
+func TestReplayFirstTick(t *testing.T) {
+	plant, _, sets := rpDemo(t)
+	t0 := time.Date(2026, 1, 5, 8, 0, 0, 0, time.UTC)
+	at := func(s float64) time.Time { return t0.Add(time.Duration(s * float64(time.Second))) }
+	// A burst per second — the heater, then the two temperatures a few
+	// microseconds later, as a plant publishes them — dated at the whole
+	// second and received 0.2 ms to 0.3 ms after it.
+	burst := func(w *recording.Writer, k int) {
+		for i, subj := range []string{"pilot.hwl.jc100.out", "pilot.hwl.tt110.pv", "pilot.hwl.tt120.pv"} {
+			v := []float64{6, 61, 54.4}[i]
+			recv := at(float64(k) + 0.0002 + float64(i)*0.00005)
+			if err := w.Write(recv, subj, simplant.AppendPayload(nil, v, at(float64(k)))); err != nil {
+				t.Fatal(err)
+			}
+		}
+	}
+	replay := func(withEstimates bool) (*daemon.ReplayResult, time.Time, string) {
+		var b bytes.Buffer
+		w := recording.NewWriter(&b)
+		for k := range 20 {
+			burst(w, k)
+			if withEstimates {
+				// The recorded daemon ticked at 0.7 s past each second.
+				est := fmt.Sprintf(`{"time":"%s","seq":%d}`, at(float64(k)+0.7).Format(time.RFC3339Nano), k+1)
+				w.Write(at(float64(k)+0.7001), "surmise.hotwater-loop.estimate", []byte(est))
+			}
+		}
+		br, err := recording.ReadJSONL(&b, "bus.jsonl")
+		if err != nil {
+			t.Fatal(err)
+		}
+		src := daemon.NewBusSource(plant, br)
+		first, why := src.FirstTick(plant)
+		res, err := daemon.Replay(plant, sets, src, daemon.ReplayOptions{})
+		if err != nil {
+			t.Fatal(err)
+		}
+		return res, first, why
+	}
+
+	res, first, why := replay(false)
+	// Arrivals 0.2 ms, 0.25 ms and 0.3 ms after each second (circular
+	// mean 0.25 ms): ticks half a period later, 0.50025 s after each
+	// second.
+	if want := at(0.0002 + 0.5 + 0.00005); first.Sub(want).Abs() > time.Microsecond {
+		t.Errorf("first tick %v (%s), want %v", first, why, want)
+	}
+	for _, c := range res.Signals {
+		if c.RefusedTotal() != 0 || (c.Output && c.Used != 20) {
+			t.Errorf("%s: want every sample used", c.String())
+		}
+	}
+	if len(res.Issues) != 0 {
+		t.Errorf("issues: %v", res.Issues)
+	}
+
+	res, first, why = replay(true)
+	if !first.Equal(at(0.7)) || !strings.Contains(why, "20 estimates") {
+		t.Errorf("first tick %v (%s), want the first estimate's time %v", first, why, at(0.7))
+	}
+	if len(res.Issues) != 0 {
+		t.Errorf("issues (the estimates are not samples of an unwired subject): %v", res.Issues)
+	}
+	if !res.Start.Equal(at(0.7)) || res.Ticks != 20 {
+		t.Errorf("%d ticks from %v, want 20 from %v", res.Ticks, res.Start, at(0.7))
+	}
+
+	csv := rpSimCSV(t, plant, "steady", 3, t0, 10)
+	rec, err := recording.ReadCSV(strings.NewReader(csv), "t.csv", recording.CSVOptions{Known: daemon.CSVColumns(plant)})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if first, _ := daemon.NewCSVSource(plant, rec).FirstTick(plant); !first.Equal(t0) {
+		t.Errorf("CSV: first tick %v, want the first row's %v", first, t0)
 	}
 }

@@ -245,7 +245,8 @@ func describeDemo(w io.Writer, plant *config.Plant, gains *config.GainsFile, ep 
 	fmt.Fprintf(w, "HTTP      http://%s/  (live page)   /metrics   /healthz   /readyz\n", ep.HTTPAddr)
 	fmt.Fprintf(w, "watch     nats sub --server %s '%s.>'   (any NATS client)\n", ep.BusURL, strings.TrimSuffix(est, ".estimate"))
 	if f.speed == 1 {
-		fmt.Fprintf(w, "record    surmise record --nats %s --subjects 'pilot.hwl.>,%s.>' --out demo.jsonl\n", ep.BusURL, strings.TrimSuffix(est, ".estimate"))
+		fmt.Fprintf(w, "record    surmise record --nats %s --subjects 'pilot.hwl.>,%s' --out demo.jsonl\n", ep.BusURL, daemon.TruthSubject(plant, ">"))
+		fmt.Fprintf(w, "replay    surmise replay testdata/plants/hotwater-loop.yaml --data demo.jsonl --report demo.html\n")
 	}
 	how := "interrupt (Ctrl-C) to stop"
 	if f.length > 0 {

@@ -24,9 +24,12 @@ import (
 const replaySynopsis = `[flags] PLANT.yaml --data FILE
 
 Runs the daemon's tick engine over a recording on virtual time: ticks at
-t0 + k·Ts from the first sample (or --start), and before each tick the
-samples received up to it, in the order received — the same hold,
-staleness, use-once, gate and status rules as a live run. One engine per
+t0 + k·Ts, and before each tick the samples received up to it, in the order
+received — the same hold, staleness, use-once, gate and status rules as a
+live run. t0 is --start, else: for a CSV the first row's time; for a bus
+recording that holds the plant's own estimates the first estimate's time
+(where the recorded daemon ticked); for other bus recordings half a period
+after the samples' typical arrival. One engine per
 gain set: each --gains FILE runs that file's active set (FILE:NAME runs the
 set NAME); without --gains, the plant's gains file's active set and its
 candidate.
@@ -171,7 +174,11 @@ func runReplay(_ context.Context, e *env, args []string) error {
 	in.Truth = res.Truth
 	printIssues(e, src.Name, res.Issues[len(src.Issues):], f.allIssues)
 	sums := report.Summarise(in)
-	writeReplaySummary(e.stdout, plant, src, res, in, sums)
+	placed := "given by --start"
+	if start.IsZero() {
+		_, placed = src.FirstTick(plant)
+	}
+	writeReplaySummary(e.stdout, plant, src, res, in, sums, placed)
 	if csvOut != nil {
 		fmt.Fprintf(e.stdout, "wrote %s (%d rows)\n", f.outCSV, csvOut.rows)
 	}
@@ -518,11 +525,12 @@ func (b *progressBar) done() {
 
 // writeReplaySummary prints what the replay did and the statistics of each
 // gain set.
-func writeReplaySummary(w io.Writer, plant *config.Plant, src *daemon.ReplaySource, res *daemon.ReplayResult, in *report.Input, sums []report.Summary) {
+func writeReplaySummary(w io.Writer, plant *config.Plant, src *daemon.ReplaySource, res *daemon.ReplayResult, in *report.Input, sums []report.Summary, placed string) {
 	ts := time.Duration(plant.Model.Ts * float64(time.Second))
 	last := res.Start.Add(time.Duration(res.Ticks-1) * ts)
 	fmt.Fprintf(w, "replayed %s on %s: %d ticks every %v, %s to %s, %d gain %s\n", plant.Name, src.Name, res.Ticks, ts,
 		res.Start.UTC().Format(time.RFC3339Nano), last.UTC().Format(time.RFC3339Nano), len(sums), pluralWord(len(sums), "set", "sets"))
+	fmt.Fprintf(w, "first tick: %s\n", placed)
 	fmt.Fprintln(w, "samples")
 	for i := range res.Signals {
 		fmt.Fprintf(w, "  %s\n", res.Signals[i].String())
