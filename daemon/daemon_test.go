@@ -172,6 +172,9 @@ type wireEstimate struct {
 		Value float64  `json:"value"`
 		Std   *float64 `json:"std"`
 	} `json:"states"`
+	Outputs map[string]struct {
+		Outlier bool `json:"outlier"`
+	} `json:"outputs"`
 }
 
 func parseEstimate(t testing.TB, data []byte) wireEstimate {
