@@ -596,10 +596,14 @@ func (d *Daemon) Ready() error {
 // missing lists what keeps the daemon from being ready, for /readyz.
 func (d *Daemon) missing() []string {
 	var m []string
-	if d.started.Load() == 0 {
+	switch {
+	case d.started.Load() == 0:
 		m = append(m, "not running")
-	}
-	if !d.busConnected() {
+	case d.scheduled.Load() == 0:
+		// Starting; the bus is only read once the scheduler has started
+		// (set after it), so that this may run on any goroutine.
+		m = append(m, "starting")
+	case !d.busConnected():
 		m = append(m, "bus not connected")
 	}
 	for _, e := range d.estimators {
