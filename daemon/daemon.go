@@ -403,15 +403,16 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 			return ep, err
 		}
 	}
-	// A round trip, so that the server has every subscription when Started
-	// says so. Without a connection yet, they are sent on connecting.
+	if err := d.startCommissioning(g, bus.Conn()); err != nil {
+		return ep, err
+	}
+	// A round trip, so that the server has every subscription (samples,
+	// control service) when Started says so. Without a connection yet, they
+	// are sent on connecting.
 	if nc := bus.Conn(); nc.IsConnected() {
 		if err := nc.FlushTimeout(drainTimeout); err != nil {
 			d.log.Warn("bus: subscriptions not confirmed by the server", "error", err)
 		}
-	}
-	if err := d.startCommissioning(g, bus.Conn()); err != nil {
-		return ep, err
 	}
 
 	if err := d.http.Listen(); err != nil {
