@@ -199,6 +199,14 @@ func Connect(opts BusOptions, m *Metrics, log *slog.Logger) (*Bus, error) {
 		nats.ReconnectJitter(jitter, jitter),
 		nats.RetryOnFailedConnect(true),
 		nats.ReconnectBufSize(-1), // see the doc comment: no stale estimates after a reconnect
+		// A silent partition (no FIN, no RST) is noticed within about
+		// PingInterval·(MaxPingsOutstanding+1) = 15 s instead of the
+		// client's default of minutes, and a write to a stuck socket gives
+		// up after a second instead of a minute, so a tick's publish never
+		// waits long on a dead link.
+		nats.PingInterval(5 * time.Second),
+		nats.MaxPingsOutstanding(2),
+		nats.FlusherTimeout(time.Second),
 		nats.ConnectHandler(func(nc *nats.Conn) {
 			setConnected(true)
 			log.Info("bus connected", "url", nc.ConnectedUrlRedacted())

@@ -40,6 +40,11 @@ func newCtlRig(t *testing.T) *ctlRig {
 		t.Fatal(err)
 	}
 	t.Cleanup(func() { svc.Stop() })
+	// A round trip, so the server has the service's subscriptions before
+	// the first request (as the daemon does after starting the service).
+	if err := svcConn.Flush(); err != nil {
+		t.Fatal(err)
+	}
 	r.nc, err = nats.Connect(ns.ClientURL())
 	if err != nil {
 		t.Fatal(err)
