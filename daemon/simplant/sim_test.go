@@ -359,3 +359,28 @@ func TestTruthSubject(t *testing.T) {
 		t.Errorf("without a publish key: got %q", got)
 	}
 }
+
+// TestTimeScaled checks the plant for a sped-up run: sample time and
+// max_age divided by the speed, the discrete matrices shared, the gains
+// file's fingerprint that of the new model (config.Fingerprint hashes the
+// sample time), and speed 1 the identity.
+func TestTimeScaled(t *testing.T) {
+	plant := demoPlant(t)
+	gains, err := config.LoadGains(plant.GainsPath, plant)
+	if err != nil {
+		t.Fatal(err)
+	}
+	p2, g2 := TimeScaled(plant, gains, 5)
+	if p2.Model.Ts != 0.2 || p2.Inputs[0].MaxAge != time.Second || p2.Outputs[1].MaxAge != 600*time.Millisecond {
+		t.Errorf("Ts %v, max_age %v and %v; want 0.2, 1s and 600ms (5s and 3s in the file)", p2.Model.Ts, p2.Inputs[0].MaxAge, p2.Outputs[1].MaxAge)
+	}
+	if p2.Model.A != plant.Model.A || plant.Model.Ts != 1 || plant.Inputs[0].MaxAge != 5*time.Second {
+		t.Error("the discrete model was copied or the original changed")
+	}
+	if g2.Fingerprint != config.Fingerprint(p2.Model) || g2.Fingerprint == gains.Fingerprint || gains.Fingerprint != config.Fingerprint(plant.Model) {
+		t.Error("fingerprints: want the new model's on the copy, the old file unchanged")
+	}
+	if p1, g1 := TimeScaled(plant, gains, 1); p1 != plant || g1 != gains {
+		t.Error("speed 1 changed something")
+	}
+}
