@@ -15,6 +15,7 @@ import (
 	"sync"
 	"sync/atomic"
 	"time"
+	"unsafe"
 
 	"github.com/prometheus/client_golang/prometheus"
 
@@ -38,6 +39,12 @@ const (
 	// pageMaxRows bounds an estimator's history ring: a faster estimator
 	// keeps one tick in every ⌈history/period/pageMaxRows⌉.
 	pageMaxRows = 3000
+	// pageBudget bounds the memory of all history rings together, so that a
+	// process with a fleet of estimators keeps a thinner history of each
+	// instead of gigabytes (one 10-state estimator's full ring is about
+	// 2 MB). Every ring keeps at least pageMinRows rows.
+	pageBudget  = 256 << 20
+	pageMinRows = 120
 	// pageAuditLen is the number of audit entries the page shows.
 	pageAuditLen = 50
 	// pageChunk is the number of rows a stream copies out of a ring at a
@@ -51,9 +58,11 @@ const (
 // PageOptions configures a [Page]. The zero value means the defaults.
 type PageOptions struct {
 	// History is how much of the past each estimator keeps for the page;
-	// default DefaultPageHistory. The ring holds at most 3000 rows; a
-	// faster estimator keeps one tick in k (the page says which), ORing the
-	// outlier and stale flags of the ticks it skips into the next one kept.
+	// default DefaultPageHistory. The ring holds at most 3000 rows, fewer
+	// when many estimators share the page's memory budget (256 MiB for all
+	// rings; at least 120 rows each); a faster estimator keeps one tick in k
+	// (the page says which), ORing the outlier and stale flags of the ticks
+	// it skips into the next one kept.
 	History time.Duration
 
 	// Rate is the largest number of updates per second sent to one client
@@ -301,13 +310,16 @@ func NewPage(ests []PageEstimator, opts PageOptions) (*Page, error) {
 		if win <= 0 {
 			win = config.DefaultWindow
 		}
-		ticks := max(int64(opts.History/period), 1)
-		every := (ticks + pageMaxRows - 1) / pageMaxRows
 		pe := &pageEst{
 			name: name, plant: e.Plant, gains: e.Gains, period: period, window: win,
-			n: n, m: m, p: pp, every: uint64(every),
+			n: n, m: m, p: pp,
 		}
-		pe.ring = newPageRing(int(min(ticks, pageMaxRows)), pe.stride())
+		rowBytes := int64(pe.stride())*8 + int64(unsafe.Sizeof(pageRow{}))
+		maxRows := min(int64(pageMaxRows), max(pageBudget/(int64(len(ests))*rowBytes), pageMinRows))
+		ticks := max(int64(opts.History/period), 1)
+		every := (ticks + maxRows - 1) / maxRows
+		pe.every = uint64(every)
+		pe.ring = newPageRing(int(min(ticks, maxRows)), pe.stride())
 		p.ests = append(p.ests, pe)
 		p.byName[name] = pe
 	}
