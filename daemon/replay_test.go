@@ -466,39 +466,3 @@ func TestReplayFirstTick(t *testing.T) {
 		t.Errorf("CSV: first tick %v, want the first row's %v", first, t0)
 	}
 }
-
-// TestReplayAllocs checks that a replay allocates nothing per tick or
-// sample: replaying four times as many ticks costs as many allocations. The
-// steady scenario keeps the number of outputs per tick, and so the NIS
-// window's degrees of freedom, constant: the engine computes the chi-square
-// band of each new sum of them once, allocating, and keeps it; the outlier
-// gate is off, as a rejected output changes that sum too.
-func TestReplayAllocs(t *testing.T) {
-	plant, gains, _ := rpDemo(t)
-	var sets []*estimator.Prepared
-	for _, name := range []string{gains.Active, gains.Candidate} {
-		p, err := estimator.Prepare(plant.Model, gains.Set(name).Set, 0)
-		if err != nil {
-			t.Fatal(err)
-		}
-		sets = append(sets, p)
-	}
-	t0 := time.Date(2026, 1, 5, 8, 0, 0, 0, time.UTC)
-	allocs := func(n int) float64 {
-		rec, err := recording.ReadCSV(strings.NewReader(rpSimCSV(t, plant, "steady", 2, t0, n)), "a.csv",
-			recording.CSVOptions{Known: daemon.CSVColumns(plant)[:3]}) // no truth: its columns are allocated per tick count
-		if err != nil {
-			t.Fatal(err)
-		}
-		src := daemon.NewCSVSource(plant, rec)
-		return testing.AllocsPerRun(5, func() {
-			if _, err := daemon.Replay(plant, sets, src, daemon.ReplayOptions{}); err != nil {
-				t.Fatal(err)
-			}
-		})
-	}
-	short, long := allocs(240), allocs(960)
-	if long != short {
-		t.Errorf("a replay of 960 ticks allocates %v times, of 240 ticks %v: want the same", long, short)
-	}
-}
