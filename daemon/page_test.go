@@ -555,7 +555,10 @@ func TestPageEventsResume(t *testing.T) {
 // waited WriteTimeout.
 func TestPageSlowClient(t *testing.T) {
 	// 50 minutes of 1 s ticks: 3000 rows, every tick kept.
-	r := newPageRig(t, daemon.PageOptions{History: 50 * time.Minute, WriteTimeout: 300 * time.Millisecond}, false)
+	// The write timeout is long enough that a healthy reader on a loaded
+	// machine (CI runs packages side by side) is never taken for a stalled
+	// one, short enough to keep the test quick.
+	r := newPageRig(t, daemon.PageOptions{History: 50 * time.Minute, WriteTimeout: 2 * time.Second}, false)
 	r.tick(true)
 
 	// The stalled client: a raw connection with a small receive buffer
@@ -578,7 +581,7 @@ func TestPageSlowClient(t *testing.T) {
 
 	// Ticks go on: each update to the stalled client carries every row
 	// since its last, up to the ring (3000 rows), which soon fills its
-	// socket buffers; its write then waits, and after 300 ms it is
+	// socket buffers; its write then waits, and after 2 s it is
 	// dropped. If Observe waited for a client, this loop would hang.
 	deadline := time.Now().Add(60 * time.Second)
 	var healthySeq uint64
