@@ -128,6 +128,10 @@ func TestExitCodes(t *testing.T) {
 		{"design with a bad --faster", []string{"design", "--faster", "-2", plantPath("hotwater-loop.yaml")}, 2},
 		{"no command", nil, 2},
 		{"unknown command", []string{"chek"}, 2},
+		{"version", []string{"version"}, 0},
+		{"version as a flag", []string{"--version"}, 0},
+		{"version with an unknown flag", []string{"version", "--x"}, 2},
+		{"version with an argument", []string{"version", "extra"}, 2},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			cmd := exec.Command(binary, tc.args...)

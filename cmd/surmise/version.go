@@ -37,8 +37,12 @@ func version() string {
 
 func runVersion(_ context.Context, e *env, args []string) error {
 	fs := newFlags(e, "version", "")
-	if err := fs.Parse(args); err != nil {
+	rest, err := parseArgs(fs, args)
+	if err != nil {
 		return err
+	}
+	if len(rest) > 0 {
+		return usageError("takes no arguments, got %q", rest)
 	}
 	fmt.Fprintln(e.stdout, version())
 	return nil
