@@ -85,6 +85,12 @@ func TestRecordKilled(t *testing.T) {
 	cmd.Wait()
 	cancel()
 	n := <-published
+	// A round trip, so that every message the client still buffered has
+	// reached the server before the second recorder subscribes below: it
+	// must record none of them.
+	if err := nc.Flush(); err != nil {
+		t.Fatal(err)
+	}
 	data, err := os.ReadFile(path)
 	if err != nil {
 		t.Fatal(err)
