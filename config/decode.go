@@ -135,8 +135,10 @@ func (d *decoder) resolve(n *yaml.Node) *yaml.Node {
 	return n
 }
 
-// describe names the kind of a node for an error message.
-func describe(n *yaml.Node) string {
+// DescribeNode names the kind and value of a YAML node for an error message
+// ("a mapping", "the number 3", a quoted string). Other strict parsers of
+// the project (scenario files) use it so that their messages read alike.
+func DescribeNode(n *yaml.Node) string {
 	switch n.Kind {
 	case yaml.MappingNode:
 		return "a mapping"
@@ -189,7 +191,7 @@ func (d *decoder) mapping(n *yaml.Node, path string, fields []field) bool {
 		return false
 	}
 	if n.Kind != yaml.MappingNode {
-		d.errorf(n, path, "want a mapping, got %s", describe(n))
+		d.errorf(n, path, "want a mapping, got %s", DescribeNode(n))
 		return false
 	}
 	seen := make(map[string]*yaml.Node, len(fields))
@@ -200,7 +202,7 @@ func (d *decoder) mapping(n *yaml.Node, path string, fields []field) bool {
 			return true
 		}
 		if k.Kind != yaml.ScalarNode || k.Tag == "!!merge" {
-			d.errorf(k, path, "unsupported key %s (merge keys and complex keys are not allowed)", describe(k))
+			d.errorf(k, path, "unsupported key %s (merge keys and complex keys are not allowed)", DescribeNode(k))
 			continue
 		}
 		key := k.Value
@@ -247,7 +249,7 @@ func (d *decoder) sequence(n *yaml.Node, path string) ([]*yaml.Node, bool) {
 		return nil, false
 	}
 	if n.Kind != yaml.SequenceNode {
-		d.errorf(n, path, "want a list, got %s", describe(n))
+		d.errorf(n, path, "want a list, got %s", DescribeNode(n))
 		return nil, false
 	}
 	items := make([]*yaml.Node, 0, len(n.Content))
@@ -264,7 +266,7 @@ func (d *decoder) sequence(n *yaml.Node, path string) ([]*yaml.Node, bool) {
 // str decodes a string scalar.
 func (d *decoder) str(n *yaml.Node, path string) (string, bool) {
 	if n.Kind != yaml.ScalarNode || n.Tag != "!!str" {
-		d.errorf(n, path, "want a string, got %s (quote it if it is meant as text)", describe(n))
+		d.errorf(n, path, "want a string, got %s (quote it if it is meant as text)", DescribeNode(n))
 		return "", false
 	}
 	return n.Value, true
@@ -273,7 +275,7 @@ func (d *decoder) str(n *yaml.Node, path string) (string, bool) {
 // number decodes a finite number.
 func (d *decoder) number(n *yaml.Node, path string) (float64, bool) {
 	if n.Kind != yaml.ScalarNode || (n.Tag != "!!int" && n.Tag != "!!float") {
-		d.errorf(n, path, "want a number, got %s", describe(n))
+		d.errorf(n, path, "want a number, got %s", DescribeNode(n))
 		return 0, false
 	}
 	var v float64
@@ -291,7 +293,7 @@ func (d *decoder) number(n *yaml.Node, path string) (float64, bool) {
 // integer decodes a whole number.
 func (d *decoder) integer(n *yaml.Node, path string) (int, bool) {
 	if n.Kind != yaml.ScalarNode || n.Tag != "!!int" {
-		d.errorf(n, path, "want a whole number, got %s", describe(n))
+		d.errorf(n, path, "want a whole number, got %s", DescribeNode(n))
 		return 0, false
 	}
 	var v int
@@ -305,7 +307,7 @@ func (d *decoder) integer(n *yaml.Node, path string) (int, bool) {
 // duration decodes a Go duration string such as "500ms", "1s" or "1m30s".
 func (d *decoder) duration(n *yaml.Node, path string) (time.Duration, bool) {
 	if n.Kind != yaml.ScalarNode || n.Tag != "!!str" {
-		d.errorf(n, path, "want a duration with its unit, such as 500ms or 2s, got %s", describe(n))
+		d.errorf(n, path, "want a duration with its unit, such as 500ms or 2s, got %s", DescribeNode(n))
 		return 0, false
 	}
 	v, err := time.ParseDuration(n.Value)

@@ -402,7 +402,7 @@ func (w *gainsWalker) poles(v *yaml.Node, path string) []complex128 {
 			continue
 		}
 		if it.Kind != yaml.ScalarNode || it.Tag != "!!str" {
-			d.errorf(it, ip, "want a pole such as \"0.81\" or \"0.5+0.2i\", got %s", describe(it))
+			d.errorf(it, ip, "want a pole such as \"0.81\" or \"0.5+0.2i\", got %s", DescribeNode(it))
 			ok = false
 			continue
 		}
@@ -446,7 +446,7 @@ func (w *gainsWalker) provenance(v *yaml.Node, path string) Provenance {
 		{"factor", false, func(v *yaml.Node, fp string) { pv.Factor, _ = d.number(v, fp) }},
 		{"created", false, func(v *yaml.Node, fp string) {
 			if v.Kind != yaml.ScalarNode || (v.Tag != "!!str" && v.Tag != "!!timestamp") {
-				d.errorf(v, fp, "want an RFC 3339 time such as 2025-06-01T14:03:00Z, got %s", describe(v))
+				d.errorf(v, fp, "want an RFC 3339 time such as 2025-06-01T14:03:00Z, got %s", DescribeNode(v))
 				return
 			}
 			t, err := time.Parse(time.RFC3339Nano, v.Value)

@@ -171,7 +171,7 @@ func (w *walker) entries(n *yaml.Node, path string) ([]entry, bool) {
 		return nil, false
 	}
 	if n.Kind != yaml.MappingNode {
-		w.errorf(n, path, "want a mapping, got %s", describe(n))
+		w.errorf(n, path, "want a mapping, got %s", config.DescribeNode(n))
 		return nil, false
 	}
 	var out []entry
@@ -182,7 +182,7 @@ func (w *walker) entries(n *yaml.Node, path string) ([]entry, bool) {
 			return nil, false
 		}
 		if k.Kind != yaml.ScalarNode || k.Tag == "!!merge" {
-			w.errorf(k, path, "unsupported key %s (merge keys and complex keys are not allowed)", describe(k))
+			w.errorf(k, path, "unsupported key %s (merge keys and complex keys are not allowed)", config.DescribeNode(k))
 			continue
 		}
 		if line, dup := seen[k.Value]; dup {
@@ -195,28 +195,6 @@ func (w *walker) entries(n *yaml.Node, path string) ([]entry, bool) {
 	return out, true
 }
 
-func describe(n *yaml.Node) string {
-	switch n.Kind {
-	case yaml.MappingNode:
-		return "a mapping"
-	case yaml.SequenceNode:
-		return "a list"
-	case yaml.ScalarNode:
-		switch n.Tag {
-		case "!!null":
-			return "nothing (null)"
-		case "!!int", "!!float":
-			return "the number " + n.Value
-		case "!!bool":
-			return "the boolean " + n.Value
-		case "!!str":
-			return strconv.Quote(n.Value)
-		}
-		return fmt.Sprintf("%s %q", n.Tag, n.Value)
-	}
-	return "an unexpected YAML node"
-}
-
 func join(path, key string) string {
 	if path == "" {
 		return key
@@ -226,7 +204,7 @@ func join(path, key string) string {
 
 func (w *walker) str(n *yaml.Node, path string) (string, bool) {
 	if n.Kind != yaml.ScalarNode || n.Tag != "!!str" {
-		w.errorf(n, path, "want a name, got %s", describe(n))
+		w.errorf(n, path, "want a name, got %s", config.DescribeNode(n))
 		return "", false
 	}
 	return n.Value, true
@@ -234,7 +212,7 @@ func (w *walker) str(n *yaml.Node, path string) (string, bool) {
 
 func (w *walker) number(n *yaml.Node, path string) (float64, bool) {
 	if n.Kind != yaml.ScalarNode || (n.Tag != "!!int" && n.Tag != "!!float") {
-		w.errorf(n, path, "want a number, got %s", describe(n))
+		w.errorf(n, path, "want a number, got %s", config.DescribeNode(n))
 		return 0, false
 	}
 	var v float64
@@ -248,7 +226,7 @@ func (w *walker) number(n *yaml.Node, path string) (float64, bool) {
 func (w *walker) integer(n *yaml.Node, path string) (int, bool) {
 	var v int
 	if n.Kind != yaml.ScalarNode || n.Tag != "!!int" || n.Decode(&v) != nil {
-		w.errorf(n, path, "want a whole number, got %s", describe(n))
+		w.errorf(n, path, "want a whole number, got %s", config.DescribeNode(n))
 		return 0, false
 	}
 	return v, true
@@ -257,7 +235,7 @@ func (w *walker) integer(n *yaml.Node, path string) (int, bool) {
 func (w *walker) boolean(n *yaml.Node, path string) (bool, bool) {
 	var v bool
 	if n.Kind != yaml.ScalarNode || n.Tag != "!!bool" || n.Decode(&v) != nil {
-		w.errorf(n, path, "want true or false, got %s", describe(n))
+		w.errorf(n, path, "want true or false, got %s", config.DescribeNode(n))
 		return false, false
 	}
 	return v, true
@@ -269,7 +247,7 @@ const maxDuration = 366 * 24 * time.Hour
 
 func (w *walker) duration(n *yaml.Node, path string) (time.Duration, bool) {
 	if n.Kind != yaml.ScalarNode || n.Tag != "!!str" {
-		w.errorf(n, path, "want a duration with its unit, such as 500ms or 2s, got %s", describe(n))
+		w.errorf(n, path, "want a duration with its unit, such as 500ms or 2s, got %s", config.DescribeNode(n))
 		return 0, false
 	}
 	d, err := time.ParseDuration(n.Value)
@@ -331,7 +309,7 @@ func (w *walker) scenario(data []byte, plant *config.Plant) (*Scenario, position
 		return sc, pos
 	}
 	if events.Kind != yaml.SequenceNode {
-		w.errorf(events, "events", "want a list of events, got %s", describe(events))
+		w.errorf(events, "events", "want a list of events, got %s", config.DescribeNode(events))
 		return sc, pos
 	}
 	if len(events.Content) > maxEvents {
