@@ -32,6 +32,17 @@ type Outcome struct {
 	// GateReleased is true when the gate was set aside this tick because it
 	// had rejected every present output on the GateRelease ticks before.
 	GateReleased bool
+	// Refusing is true when the gate has rejected every present output on
+	// at least GateSuspect consecutive ticks, this one included.
+	Refusing bool
+	// GateNIS is the NIS of every present output before the gate, clipped at
+	// the gate's threshold χ²_GateDof(gate) when the gate refused any of
+	// them; GateDof is its number of outputs, 0 when there is none (no
+	// output present, or no S known). It is what a consistency judgement
+	// should count: a refused innovation is evidence too, and the clip keeps
+	// one wild sample from dominating a window.
+	GateNIS float64
+	GateDof int
 }
 
 // GateRelease is the number of consecutive ticks on which the outlier gate
@@ -43,6 +54,25 @@ type Outcome struct {
 // a short run of total rejections is common practice in tracking.
 const GateRelease = 10
 
+// GateSuspect is the number of consecutive ticks on which the gate rejects
+// every present output after which the filter reports itself locked out
+// (Outcome.Refusing): from then on its estimate cannot be trusted, whatever
+// its windowed NIS says, until a measurement is accepted again.
+const GateSuspect = 3
+
+// acquireTol is how close, in the same measure as settleTol, the a priori
+// covariance of an acquisition must come to the Kalman filter's steady state
+// before the fixed gain takes over. The hand-over need not wait for the last
+// digits: from there the fixed gain's own recursion carries the covariance.
+const acquireTol = 0.05
+
+// settleTol is how close, relative to the steady state's own standard
+// deviations, a propagated covariance must come to the steady state before
+// the filter stops propagating it: |P_ij − P̄_ij| ≤ settleTol·√(P̄_ii·P̄_jj)
+// for every entry. A step of 0.1 % in a variance is invisible in the
+// published σ.
+const settleTol = 1e-3
+
 // Filter runs one estimator, tick by tick. Build it with NewFilter; it
 // allocates all its buffers there, and Step, the read-outs, Use and Reset
 // allocate nothing. A Filter is not safe for concurrent use.
@@ -50,6 +80,37 @@ const GateRelease = 10
 // The published estimate after a Step is x̂(k|k) for the current and Kalman
 // forms and x̂(k|k−1) for the prediction form, whose correction with y(k)
 // enters the prediction of the next tick.
+//
+// # Covariance
+//
+// The Kalman form propagates its covariance every tick. A fixed gain set
+// prepared for a model with Q and R does too (it is "tracked"), so that the
+// σ it publishes, the S its gate judges with and its NIS describe the filter
+// as it runs, not only its design-time steady state:
+//
+//   - Acquisition. From NewFilter or Reset with an initial covariance, and
+//     after a gate release, the filter runs as the time-varying Kalman
+//     filter of the model's Q and R, from that covariance, until its a
+//     priori covariance reaches the steady state of that Kalman filter;
+//     from then on it corrects with the set's fixed gain. The state and the
+//     covariance carry over, so the hand-over makes no step. The optimal
+//     gain takes a start far from the truth in as few ticks as the data
+//     allow, where a fixed gain designed for the steady state (often with
+//     deliberately slow poles) would take as long as its slowest pole.
+//   - Fixed-gain recursion. With the fixed gain L for the outputs used, the
+//     covariance of the error follows the recursion of that gain (not the
+//     Kalman one): P⁺ = (I − L·C_s)·P⁻·(I − L·C_s)ᵀ + L·R_s·Lᵀ in the
+//     current form, P⁻(k+1) = (A − L·C_s)·P⁻·(A − L·C_s)ᵀ + Q + L·R_s·Lᵀ in
+//     the prediction form, A·P·Aᵀ + Q on a tick that only predicts.
+//   - Settled. Once the covariance is within settleTol of the steady state
+//     of the full-pattern gain (FixedGainCovariance), the filter stops
+//     propagating it and uses that steady state, so the steady tick costs
+//     no more than a fixed gain without covariance; anything else (a
+//     missing output, an outlier, coasting, a reset, a swap of gains)
+//     starts the propagation again from the steady state.
+//
+// A fixed gain set prepared without Q or R publishes the P stored with its
+// full-pattern gain, if any, and judges with the S stored with each gain.
 type Filter struct {
 	pr      *Prepared
 	n, m, p int
@@ -66,11 +127,16 @@ type Filter struct {
 	rejected int
 	thr      []float64
 
+	// Covariance of a tracked fixed gain set (see the type's documentation).
+	acq     bool // acquiring: the Kalman correction runs
+	settled bool // P is the set's steady state and is not propagated
+	hasNext bool // pnext holds the a priori P of the next tick
+
 	yhat   []float64 // C·x̂(k|k−1) + D·(u(k) − U0)
 	r      []float64 // innovation per output; valid for the outputs in used
 	sv     []float64 // S_ii per output; valid for the outputs in used when svOK
 	used   Pattern
-	svOK   bool          // Kalman: sv holds S_ii for the outputs in used
+	svOK   bool          // sv holds S_ii for the outputs in used
 	svGain *compiledGain // fixed gains: the gain whose S was used, or nil
 	full   Pattern       // all p outputs
 
@@ -81,8 +147,10 @@ type Filter struct {
 	z    []float64 // whitened innovation
 	chol []float64 // p×p
 
-	// Kalman
-	P, Pn []float64 // n×n: the covariance, and scratch
+	// Covariance (Kalman, tracked fixed gains)
+	P, Pn []float64 // n×n: the covariance of the published estimate, and scratch
+	pnext []float64 // n×n: prediction form, the a priori P of the next tick
+	tcl   []float64 // n×n: A − L·C_s
 	p0    []float64 // the initial covariance; nil when none was given or derived
 	cs    []float64 // p×n: the rows of C for the present outputs
 	cp    []float64 // p×n: C_s·P⁻
@@ -92,15 +160,19 @@ type Filter struct {
 	h     []float64 // p: a row of K·R_s − M·C_sᵀ
 }
 
+// tracks reports whether the filter propagates a covariance.
+func (f *Filter) tracks() bool { return f.pr.form == Kalman || f.pr.tracked }
+
 // NewFilter returns a filter for the prepared gain set pr starting at the
 // absolute state x0 (nil means the operating point X0), taken as the
 // estimate x̂(0|−1): the first Step does not predict.
 //
-// p0 is the initial covariance of the Kalman form. When it is nil the
-// filter starts from the steady-state a priori covariance of the set
-// (SteadyStateKalman with all outputs) when there is one, else from 10·Q.
-// Fixed gains ignore p0 except to keep it for a later switch to a Kalman set
-// (see Use). It panics if x0 or p0 has the wrong dimension.
+// p0 is the initial covariance. When it is nil a Kalman filter starts from
+// the steady-state a priori covariance of the set (SteadyStateKalman with
+// all outputs) when there is one, else from 10·Q, and a tracked fixed gain
+// set starts settled. With p0, a tracked fixed gain set starts acquiring
+// (see Filter). Other fixed gains keep p0 for a later switch to a Kalman
+// set (see Use). It panics if x0 or p0 has the wrong dimension.
 func NewFilter(pr *Prepared, x0 []float64, p0 mat.Symmetric) *Filter {
 	n, m, p := pr.n, pr.m, pr.p
 	f := &Filter{
@@ -111,6 +183,7 @@ func NewFilter(pr *Prepared, x0 []float64, p0 mat.Symmetric) *Filter {
 		idx: make([]int, p), act: make([]int, p),
 		rs: make([]float64, p), z: make([]float64, p), chol: make([]float64, p*p),
 		P: make([]float64, n*n), Pn: make([]float64, n*n),
+		pnext: make([]float64, n*n), tcl: make([]float64, n*n),
 		cs: make([]float64, p*n), cp: make([]float64, p*n), kt: make([]float64, p*n),
 		sfull: make([]float64, p*p), rr: make([]float64, p*p), h: make([]float64, p),
 		full: FullPattern(p),
@@ -127,7 +200,7 @@ func NewFilter(pr *Prepared, x0 []float64, p0 mat.Symmetric) *Filter {
 }
 
 // Reset restarts the filter at the absolute state x0 (nil means X0), as
-// NewFilter does: the next Step does not predict, and the Kalman covariance
+// NewFilter does: the next Step does not predict, and the covariance
 // restarts from p0 (nil: as in NewFilter). It panics if x0 or p0 has the
 // wrong dimension.
 func (f *Filter) Reset(x0 []float64, p0 mat.Symmetric) {
@@ -162,10 +235,15 @@ func (f *Filter) Reset(x0 []float64, p0 mat.Symmetric) {
 	f.rejected = 0
 	f.used = 0
 	f.svOK, f.svGain = false, nil
+	f.acq, f.settled, f.hasNext = false, false, false
 	flatMulVec(f.yhat, f.pr.c, f.x)
 	switch {
+	case f.pr.tracked && p0 == nil:
+		copy(f.P, f.pr.setPub)
+		f.settled = true
 	case p0 != nil:
 		copy(f.P, f.p0)
+		f.acq = f.pr.tracked && f.pr.pss != nil
 	case f.pr.form == Kalman:
 		f.pr.defaultP(f.P, nil)
 	}
@@ -174,26 +252,64 @@ func (f *Filter) Reset(x0 []float64, p0 mat.Symmetric) {
 // Use switches the filter to another prepared gain set for the same model,
 // between ticks. The state carries over unchanged, and so does a prediction-
 // form correction not yet applied (it enters the next prediction whatever
-// the new form). Kalman to Kalman keeps the covariance; a switch from fixed
-// gains to Kalman starts the covariance from the new set's steady-state a
-// priori P when known, else from the filter's initial covariance (p0 of
-// NewFilter or Reset), else 10·Q.
+// the new form). Between sets that propagate a covariance (Kalman, tracked
+// fixed gains) the covariance carries over and is propagated from there (a
+// settled filter starts again from its steady state); a switch from a fixed
+// gain set that does not to one that does starts the covariance from the new
+// set's steady-state a priori P when known, else from the filter's initial
+// covariance (p0 of NewFilter or Reset), else 10·Q.
 //
 // It panics if pr was prepared for a different model. It allocates nothing.
 func (f *Filter) Use(pr *Prepared) {
 	if !f.pr.sameModel(pr) {
 		panic("estimator: Filter.Use: the gain set was prepared for a different model")
 	}
-	old := f.pr.form
+	wasTracking := f.tracks()
+	if f.settled && !f.first {
+		// The a priori P of the next tick is the old set's steady state.
+		copy(f.pnext, f.pr.setPrior)
+		f.hasNext = true
+	}
+	f.settled = false
 	f.pr = pr
-	if pr.form == Kalman && old != Kalman {
+	switch {
+	case !f.tracks():
+		f.acq, f.hasNext = false, false
+	case !wasTracking:
 		pr.defaultP(f.P, f.p0)
+		f.acq, f.hasNext = false, false
+	}
+	if pr.form == Kalman || pr.pss == nil {
+		f.acq = false
 	}
 	f.svOK, f.svGain = false, nil
 }
 
 // Prepared returns the gain set the filter runs with.
 func (f *Filter) Prepared() *Prepared { return f.pr }
+
+// Acquiring reports whether a tracked fixed gain set is still running the
+// time-varying Kalman correction of its acquisition (see Filter).
+func (f *Filter) Acquiring() bool { return f.acq }
+
+// Finite reports whether the state, the correction pending for the next
+// prediction and the covariance are all finite numbers. A filter for which
+// it is false has diverged: its read-outs mean nothing until Reset.
+func (f *Filter) Finite() bool {
+	for i, v := range f.x {
+		if v-v != 0 || f.pend[i]-f.pend[i] != 0 {
+			return false
+		}
+	}
+	if f.tracks() {
+		for _, v := range f.P {
+			if v-v != 0 {
+				return false
+			}
+		}
+	}
+	return true
+}
 
 // Step runs one tick (DESIGN.md §3) with the input u(k) and the outputs y(k)
 // in absolute units, of lengths m and p. Only the outputs in present are
@@ -204,20 +320,24 @@ func (f *Filter) Prepared() *Prepared { return f.pr }
 //
 //  1. Predict (not on the first Step after NewFilter or Reset):
 //     x̂(k|k−1) = A·x̂ + B·(u(k−1) − U0), plus L·r(k−1) in the prediction
-//     form; Kalman: P⁻ = A·P·Aᵀ + Q.
+//     form; the covariance P⁻ = A·P·Aᵀ + Q (Kalman, acquiring, current
+//     form), or the one the prediction-form recursion computed last tick.
 //  2. Innovation on the present outputs s: r = (y − Y0) − C·x̂(k|k−1) −
-//     D·(u(k) − U0), S_s (the fixed gain's stored S for that pattern, or
-//     C_s·P⁻·C_sᵀ + R_s), NIS = rᵀS_s⁻¹r.
+//     D·(u(k) − U0), S_s = C_s·P⁻·C_sᵀ + R_s (without a covariance, the
+//     fixed gain's stored S for that pattern), NIS = rᵀS_s⁻¹r.
 //  3. Gate: while NIS exceeds χ²_k(gate), k the outputs left, drop the
 //     output with the largest r_i²/S_ii and recompute NIS for the rest.
 //     After GateRelease ticks on which the gate rejected every present
-//     output, the next tick corrects without it (Outcome.GateReleased).
+//     output, the next tick inflates the covariance (P⁻ + P0, or 10·P⁻
+//     without P0), starts an acquisition for a tracked fixed gain set, and
+//     corrects without the gate (Outcome.GateReleased).
 //  4. Correct: Current x̂(k|k) = x̂(k|k−1) + L·r; Prediction keeps
 //     x̂(k|k−1) as its estimate and L·r for the next prediction; a fixed gain
 //     is used only if the set has one for exactly the outputs left, else the
-//     tick only predicts (Outcome.NoGain). Kalman: K = P⁻C_sᵀS_s⁻¹,
-//     x̂ = x̂(k|k−1) + K·r and the Joseph form P = (I − KC_s)P⁻(I − KC_s)ᵀ +
-//     K·R_s·Kᵀ, symmetrised.
+//     tick only predicts (Outcome.NoGain). Kalman (and acquiring):
+//     K = P⁻C_sᵀS_s⁻¹, x̂ = x̂(k|k−1) + K·r and the Joseph form
+//     P = (I − KC_s)P⁻(I − KC_s)ᵀ + K·R_s·Kᵀ, symmetrised. The covariance of
+//     a tracked fixed gain follows the recursion of its gain (see Filter).
 //
 // It panics if u or y has the wrong length.
 func (f *Filter) Step(u, y []float64, present Pattern) Outcome {
@@ -238,12 +358,19 @@ func (f *Filter) Step(u, y []float64, present Pattern) Outcome {
 			flatAdd(f.xm, f.pend)
 		}
 		f.x, f.xm = f.xm, f.x
-		if pr.form == Kalman {
-			f.predictCov()
+		if f.tracks() && !f.settled {
+			if f.hasNext {
+				copy(f.P, f.pnext)
+			} else {
+				f.predictCov()
+			}
 		}
 	}
 	f.first = false
-	f.hasP = false
+	f.hasP, f.hasNext = false, false
+	if f.acq && covNear(f.P, pr.pss, f.n, acquireTol) {
+		f.acq = false
+	}
 
 	// 2. Innovation of the present, finite outputs.
 	flatMulVec2(f.yhat, pr.c, f.x, pr.d, du)
@@ -263,41 +390,30 @@ func (f *Filter) Step(u, y []float64, present Pattern) Outcome {
 	f.thr = pr.thr
 	if f.thr != nil && f.rejected >= GateRelease {
 		f.thr, out.GateReleased = nil, true
+		f.release()
 	}
 	f.svOK, f.svGain = false, nil
-	if pr.form == Kalman {
-		f.correctKalman(pat, &out)
-	} else if g := &pr.gains[0]; pat == g.outputs && g.chol != nil {
-		// The common case inline: every output present (so r is in the
-		// order of the gain's outputs) and S known. An outlier goes the
-		// general way.
-		k := len(g.idx)
-		rs := f.r[:k]
-		nis := 0.0
-		z, ch, inv := f.z[:k], g.chol, g.invDiag[:k]
-		for i, v := range rs {
-			for j, lv := range ch[i*k : i*k+i] {
-				v -= lv * z[j]
-			}
-			v *= inv[i]
-			z[i] = v
-			nis += v * v
-		}
-		if f.thr != nil && nis > f.thr[k] {
-			f.correctFixed(pat, &out)
-		} else {
-			out.HasNIS, out.NIS, out.Dof = true, nis, k
-			f.svGain = g
-			if pr.form == Current {
-				flatMulVecAdd(f.x, g.l, rs)
-			} else {
-				flatMulVec(f.pend, g.l, rs)
-				f.hasP = true
-			}
-			out.Corrected, out.Used = true, pat
-		}
+	if g := &pr.gains; (f.settled || !f.tracks()) && pat == f.full && len(*g) > 0 && (*g)[0].chol != nil && f.correctSteady(pat, &out) {
+		// The settled steady tick: every output present and accepted.
 	} else {
-		f.correctFixed(pat, &out)
+		if f.settled {
+			// Leave the steady state: from here the covariance is propagated.
+			copy(f.P, pr.setPrior)
+			f.settled = false
+		}
+		switch {
+		case pr.form == Kalman || f.acq:
+			f.correctKalman(pat, &out)
+		case pr.tracked:
+			f.correctTracked(pat, &out)
+		default:
+			f.correctFixed(pat, &out)
+		}
+	}
+	if !f.acq && pr.tracked && !f.settled && out.Used == f.full && out.Outliers == 0 && out.Corrected &&
+		covNear(f.P, pr.setPub, f.n, settleTol) && (pr.form == Current || covNear(f.pnext, pr.setPrior, f.n, settleTol)) {
+		copy(f.P, pr.setPub)
+		f.settled, f.hasNext = true, false
 	}
 	f.used = out.Used
 	if out.Outliers != 0 && !out.Corrected {
@@ -305,8 +421,79 @@ func (f *Filter) Step(u, y []float64, present Pattern) Outcome {
 	} else {
 		f.rejected = 0
 	}
+	out.Refusing = f.rejected >= GateSuspect
 	f.uPrev, f.du = f.du, f.uPrev
 	return out
+}
+
+// correctSteady is the steady tick of a settled fixed gain set, or of a
+// fixed gain set without covariance, with every output present: S is the
+// one of the full-pattern gain. It reports false, having changed nothing,
+// when the gate refuses the innovation, for the general way to judge it.
+func (f *Filter) correctSteady(pat Pattern, out *Outcome) bool {
+	pr := f.pr
+	g := &pr.gains[0]
+	k := len(g.idx)
+	rs := f.r[:k]
+	nis := 0.0
+	z, ch, inv := f.z[:k], g.chol, g.invDiag[:k]
+	for i, v := range rs {
+		for j, lv := range ch[i*k : i*k+i] {
+			v -= lv * z[j]
+		}
+		v *= inv[i]
+		z[i] = v
+		nis += v * v
+	}
+	if f.thr != nil && nis > f.thr[k] {
+		return false
+	}
+	out.HasNIS, out.NIS, out.Dof = true, nis, k
+	out.GateNIS, out.GateDof = nis, k
+	f.svGain = g
+	if pr.form == Current {
+		flatMulVecAdd(f.x, g.l, rs)
+	} else {
+		flatMulVec(f.pend, g.l, rs)
+		f.hasP = true
+	}
+	out.Corrected, out.Used = true, pat
+	return true
+}
+
+// release inflates the covariance when the gate has refused every output
+// for GateRelease ticks: the estimate is further from the truth than the
+// filter believed, so the covariance grows by the initial covariance (the
+// uncertainty of a start; ten times itself without one), and a tracked
+// fixed gain set acquires again with the Kalman correction.
+func (f *Filter) release() {
+	if !f.tracks() {
+		return
+	}
+	if f.settled {
+		copy(f.P, f.pr.setPrior)
+		f.settled = false
+	}
+	if f.p0 != nil {
+		flatAdd(f.P, f.p0)
+	} else {
+		flatScale(f.P, 10)
+	}
+	f.acq = f.pr.tracked && f.pr.pss != nil
+}
+
+// covNear reports whether p is within tol of the steady state ss (both
+// n×n): |p_ij − ss_ij| ≤ tol·√(ss_ii·ss_jj).
+func covNear(p, ss []float64, n int, tol float64) bool {
+	for i := 0; i < n; i++ {
+		for j := 0; j < n; j++ {
+			tol := tol * math.Sqrt(math.Abs(ss[i*n+i]*ss[j*n+j]))
+			if !(math.Abs(p[i*n+j]-ss[i*n+j]) <= tol) {
+				return false
+			}
+		}
+	}
+	return true
 }
 
 // correctFixed gates and corrects with the fixed gains.
@@ -335,7 +522,11 @@ func (f *Filter) correctFixed(pat Pattern, out *Outcome) {
 				z[i] = v
 				nis += v * v
 			}
+			if out.GateDof == 0 {
+				out.GateNIS, out.GateDof = nis, k
+			}
 			if f.thr != nil && nis > f.thr[k] {
+				out.GateNIS = math.Min(out.GateNIS, f.thr[out.GateDof])
 				worst, wv := 0, -1.0
 				for l, v := range rs {
 					if e := v * v / g.sDiag[l]; e > wv {
@@ -373,15 +564,16 @@ func (f *Filter) StateTo(dst []float64) {
 
 // StdTo writes the standard deviation of each state's estimate, the square
 // roots of the diagonal of the covariance, to dst and reports whether it is
-// known. The Kalman form uses its current covariance. Fixed gains use the
-// steady-state P stored with the gain for all outputs, whatever the outputs
-// of the last tick (it is what the filter settles to with every output
-// present); without one, StdTo fills dst with NaN and returns false.
+// known. The Kalman form and a tracked fixed gain set use the covariance of
+// the filter as it runs (see Filter). Other fixed gains use the steady-state
+// P stored with the gain for all outputs, whatever the outputs of the last
+// tick (it is what the filter settles to with every output present);
+// without one, StdTo fills dst with NaN and returns false.
 func (f *Filter) StdTo(dst []float64) bool {
 	f.check("StdTo", len(dst), f.n)
 	n := f.n
 	switch {
-	case f.pr.form == Kalman:
+	case f.tracks():
 		for i := range dst {
 			dst[i] = math.Sqrt(math.Max(f.P[i*n+i], 0))
 		}
@@ -403,7 +595,7 @@ func (f *Filter) CovarianceTo(dst *mat.SymDense) bool {
 	n := f.n
 	var src []float64
 	switch {
-	case f.pr.form == Kalman:
+	case f.tracks():
 		src = f.P
 	case f.pr.pFull != nil:
 		src = f.pr.pFull

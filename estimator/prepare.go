@@ -31,9 +31,15 @@ type Prepared struct {
 	std       []float64 // √diag of the full pattern's P; nil when unknown
 	pFull     []float64 // the full pattern's P, n×n; nil when unknown
 
-	// Kalman.
+	// Kalman; for fixed gains set too when the model has Q and R.
 	q, r []float64 // n×n, p×p
-	pss  []float64 // steady-state a priori P, n×n; nil when unknown
+	pss  []float64 // steady-state a priori P of the Kalman filter, n×n; nil when unknown
+
+	// Fixed gains with the model's noise (tracked): the filter propagates
+	// its own covariance and settles on these.
+	tracked  bool
+	setPrior []float64 // steady-state a priori P of the full-pattern gain, n×n
+	setPub   []float64 // steady-state covariance of the published estimate, n×n
 }
 
 // compiledGain is one PatternGain in flat form.
@@ -176,6 +182,47 @@ func (pr *Prepared) compileFixed(md *Model, g *GainSet) error {
 		pr.byPattern[pg.Outputs] = len(pr.gains)
 		pr.gains = append(pr.gains, cg)
 	}
+	if md.Q != nil && md.R != nil {
+		return pr.compileTracked(md, g)
+	}
+	return nil
+}
+
+// compileTracked prepares a fixed gain set to carry its own covariance
+// (Filter): with the model's Q and R, the steady state the full-pattern gain
+// settles to (FixedGainCovariance) replaces the S and P stored with it —
+// those were computed for the noise of the design, these for the noise of the
+// model that runs — and the steady-state Kalman filter is kept for the
+// acquisition from a start or a reset.
+func (pr *Prepared) compileTracked(md *Model, g *GainSet) error {
+	n := pr.n
+	prior, s, pub, err := FixedGainCovariance(md.A, md.C, g.Gains[0].L, g.Form, md.Q, md.R)
+	if err != nil {
+		return err
+	}
+	g0 := &pr.gains[0]
+	k := len(g0.idx)
+	g0.chol = denseFlat(s)
+	g0.sDiag = make([]float64, k)
+	for i := range g0.sDiag {
+		g0.sDiag[i] = s.At(i, i)
+	}
+	if !flatCholesky(g0.chol, k) {
+		return fmt.Errorf("the innovation covariance of the full-pattern gain is not positive definite")
+	}
+	g0.invDiag = make([]float64, k)
+	for i := range g0.invDiag {
+		g0.invDiag[i] = 1 / g0.chol[i*k+i]
+	}
+	pr.setPrior, pr.setPub = denseFlat(prior), denseFlat(pub)
+	pr.pFull = pr.setPub
+	pr.std = make([]float64, n)
+	for i := range pr.std {
+		pr.std[i] = math.Sqrt(math.Max(pub.At(i, i), 0))
+	}
+	pr.q, pr.r = denseFlat(md.Q), denseFlat(md.R)
+	pr.pss = steadyStatePrior(md, md.Q, md.R)
+	pr.tracked = true
 	return nil
 }
 
