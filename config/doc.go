@@ -46,6 +46,9 @@
 //	    unit: degC               # optional, default "" (dimensionless)
 //	    nominal: 91.2            # operating point (absolute), optional, default 0; the model
 //	                             # is in deviations from it and estimates are published absolute
+//	    range: [0, 200]          # optional: [lo, hi], holding nominal and initial.state; an
+//	                             # estimate outside it has diverged (status diverged), and a
+//	                             # reset outside it is refused
 //	  - {name: tank_temp, unit: degC, nominal: 61.0}
 //	  - {name: wall_temp, unit: degC, nominal: 52.3}
 //	  - {name: heat_loss, unit: kW}

@@ -61,6 +61,12 @@ type Plant struct {
 	// order of the model's columns of B and rows of C.
 	Inputs, Outputs []Wire
 
+	// StateRanges are the bounds of each state (key `range: [lo, hi]` of a
+	// state, optional), in the order of the model's states: an estimate
+	// outside its state's range has diverged, and a reset outside it is
+	// refused.
+	StateRanges []Range
+
 	// Initial is the absolute initial state (key `initial.state`); by default
 	// the operating point X0.
 	Initial []float64
@@ -100,6 +106,19 @@ type ContinuousModel struct {
 	// (`noise.process.time: continuous`); nil when it gave the covariance of
 	// one sample.
 	Qc *mat.SymDense
+}
+
+// Range is the optional valid range of a state.
+type Range struct {
+	// Min and Max bound the absolute value, meaningful when HasRange.
+	Min, Max float64
+	HasRange bool
+}
+
+// Contains reports whether v is inside the range, or there is none. NaN is
+// never inside a range.
+func (r Range) Contains(v float64) bool {
+	return !r.HasRange || (v >= r.Min && v <= r.Max)
 }
 
 // Wire is how one input or output reaches the estimator on the bus.
@@ -372,21 +391,21 @@ func (r *rawPlant) walkSignals(d *decoder, v *yaml.Node, p, kind string) []*rawS
 						}
 					}
 				}},
-				field{"range", false, func(v *yaml.Node, p string) {
-					s.rangeNode = v
-					x, ok := d.vector(v, p)
-					switch {
-					case !ok:
-					case len(x) != 2:
-						d.errorf(v, p, "want [lo, hi], got %d numbers", len(x))
-					case !(x[0] < x[1]):
-						d.errorf(v, p, "lo %v is not below hi %v", x[0], x[1])
-					default:
-						s.lo, s.hi, s.rangeOK = x[0], x[1], true
-					}
-				}},
 			)
 		}
+		fields = append(fields, field{"range", false, func(v *yaml.Node, p string) {
+			s.rangeNode = v
+			x, ok := d.vector(v, p)
+			switch {
+			case !ok:
+			case len(x) != 2:
+				d.errorf(v, p, "want [lo, hi], got %d numbers", len(x))
+			case !(x[0] < x[1]):
+				d.errorf(v, p, "lo %v is not below hi %v", x[0], x[1])
+			default:
+				s.lo, s.hi, s.rangeOK = x[0], x[1], true
+			}
+		}})
 		d.mapping(it, s.path, fields)
 	}
 	return out
@@ -524,6 +543,12 @@ func (r *rawPlant) check(d *decoder) {
 	if haveN {
 		if r.initStateNode != nil && r.initState != nil && len(r.initState) != n {
 			d.errorf(r.initStateNode, "initial.state", "%d values, want %d (one per state)", len(r.initState), n)
+		} else if r.initState != nil {
+			for i, s := range r.states {
+				if v := r.initState[i]; s.rangeOK && (v < s.lo || v > s.hi) {
+					d.errorf(r.initStateNode, fmt.Sprintf("initial.state[%d]", i), "%v is outside the range [%v, %v] of state %q", v, s.lo, s.hi, s.name)
+				}
+			}
 		}
 		if r.initStdNode != nil && r.initStd != nil && len(r.initStd) != n {
 			d.errorf(r.initStdNode, "initial.std", "%d values, want %d (one per state)", len(r.initStd), n)
@@ -605,6 +630,7 @@ func (r *rawPlant) build(filename string) (*Plant, error) {
 			*list.sig = append(*list.sig, estimator.Signal{Name: s.name, Unit: s.unit})
 			*list.nom = append(*list.nom, s.nominal)
 			if list.wire == nil {
+				plant.StateRanges = append(plant.StateRanges, Range{Min: s.lo, Max: s.hi, HasRange: s.rangeOK})
 				continue
 			}
 			w := Wire{Signal: s.name, Unit: s.unit, Subject: s.subject, MaxAge: s.maxAge,

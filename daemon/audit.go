@@ -28,12 +28,14 @@ type SetRef struct {
 type AuditEntry struct {
 	Time      time.Time `json:"time"`
 	Estimator string    `json:"estimator"`
-	// Action is "load" (a gains file was accepted), "promote", "rollback"
-	// or "reset".
+	// Action is "load" (a gains file was accepted), "promote", "rollback",
+	// "reset", "diverged" (the engine found a lane's state or covariance not
+	// finite, or a state outside its range) or "reinitialise" (the engine
+	// restarted a diverged lane from the plant's initial condition).
 	Action string `json:"action"`
 	// Trigger is what asked for it: "signal" (SIGHUP), "file" (the gains
-	// file changed on disk) or "control" (a request to the control
-	// service).
+	// file changed on disk), "control" (a request to the control service)
+	// or "engine" (divergence).
 	Trigger string `json:"trigger"`
 	// Origin is who asked, for control requests: the client the server
 	// vouches for (its Nats-Request-Info header), else the request's reply

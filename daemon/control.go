@@ -263,17 +263,29 @@ type ResetRequest struct {
 	// covariance (else the gain set's steady state).
 	Std        map[string]float64 `json:"std,omitempty"`
 	Covariance [][]float64        `json:"covariance,omitempty"`
+	// Confirm applies the reset; without it the reply reports the jump of
+	// the state it would cause and nothing changes, as for an adopt-state
+	// promotion.
+	Confirm bool `json:"confirm,omitempty"`
 }
 
 // ResetReply is the result of a reset request.
 type ResetReply struct {
-	State map[string]float64 `json:"state"` // the absolute state the lanes restart from
-	Note  string             `json:"note"`
+	// Applied is false for a request without Confirm.
+	Applied bool               `json:"applied"`
+	State   map[string]float64 `json:"state"` // the absolute state the lanes restart from
+	// Jump is the difference between the reset state (its Candidate
+	// entries) and the active lane's latest estimate; nil before the first
+	// tick or when that estimate has no numbers (diverged).
+	Jump *Jump  `json:"jump,omitempty"`
+	Note string `json:"note"`
 }
 
 // Reset restarts every lane (the active and the shadow one) at the given
-// state from the next tick; the NIS windows start again. It is not held back
-// by the dwell time: it changes no gains.
+// state from the next tick; the NIS windows start again. Values outside a
+// state's range in the plant file are refused. Without req.Confirm it only
+// reports the jump the reset would cause. It is not held back by the dwell
+// time: it changes no gains.
 func (c *Commissioner) Reset(req ResetRequest, who Origin) (*ResetReply, error) {
 	md := c.plant.Model
 	n, _, _ := md.Dims()
@@ -293,6 +305,9 @@ func (c *Commissioner) Reset(req ResetRequest, who Origin) (*ResetReply, error) 
 			problems = append(problems, fmt.Sprintf("state %q: no such state", name))
 		case math.IsNaN(v) || math.IsInf(v, 0):
 			problems = append(problems, fmt.Sprintf("state %q: %v is not a finite number", name, v))
+		case i < len(c.plant.StateRanges) && !c.plant.StateRanges[i].Contains(v):
+			r := c.plant.StateRanges[i]
+			problems = append(problems, fmt.Sprintf("state %q: %v is outside its range [%v, %v] in the plant file", name, v, r.Min, r.Max))
 		default:
 			x[i] = v
 		}
@@ -337,13 +352,21 @@ func (c *Commissioner) Reset(req ResetRequest, who Origin) (*ResetReply, error) 
 		slices.Sort(problems)
 		return nil, &CommissionError{Code: CodeBadRequest, Reason: "reset refused", Detail: problems}
 	}
-	c.mu.Lock()
-	defer c.mu.Unlock()
-	c.eng.enqueue(laneOp{kind: opReset, x: x, p0: p0})
-	reply := &ResetReply{State: map[string]float64{}}
+	reply := &ResetReply{State: map[string]float64{}, Jump: c.resetJump(x)}
 	for name, i := range index {
 		reply.State[name] = x[i]
 	}
+	if !req.Confirm {
+		reply.Note = "not applied: repeat with confirm to restart every lane at this state"
+		if reply.Jump != nil {
+			reply.Note = fmt.Sprintf("not applied: the reset would move the estimate by %.6g (see the states); repeat with confirm to apply", reply.Jump.Norm)
+		}
+		return reply, nil
+	}
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	c.eng.enqueue(laneOp{kind: opReset, x: x, p0: p0})
+	reply.Applied = true
 	if len(req.State) == 0 {
 		reply.Note = "every lane restarts at the operating point"
 	} else {
@@ -355,6 +378,23 @@ func (c *Commissioner) Reset(req ResetRequest, who Origin) (*ResetReply, error) 
 		Note: reply.Note + ": " + formatState(md, x)})
 	c.log.Info("state reset", "estimator", c.name, "state", formatState(md, x), "origin", who.Who)
 	return reply, nil
+}
+
+// resetJump returns the jump from the active lane's latest estimate to the
+// absolute state x, or nil when there is no estimate with numbers yet.
+func (c *Commissioner) resetJump(x []float64) *Jump {
+	c.obsMu.Lock()
+	defer c.obsMu.Unlock()
+	a := &c.obs[0]
+	if !a.has || a.status == StatusDiverged {
+		return nil
+	}
+	for _, v := range a.x {
+		if math.IsNaN(v) || math.IsInf(v, 0) {
+			return nil
+		}
+	}
+	return a.jumpTo(x)
 }
 
 // covarianceOf checks a covariance given as rows: n×n, finite, symmetric,

@@ -95,7 +95,7 @@ func TestControlService(t *testing.T) {
 		{"promote, two values", VerbPromote, `{} {}`, nil, CodeBadRequest, "more than one JSON value"},
 		{"rollback", VerbRollback, `{}`, map[string]string{HeaderOperator: "ann@bench"}, "", `"active":{"name":"slow"`},
 		{"reset, unknown state", VerbReset, `{"state": {"nope": 1}}`, nil, CodeBadRequest, `state \"nope\": no such state`},
-		{"reset", VerbReset, `{"state": {"position": 2}, "std": {"position": 0.1, "velocity": 0.1}}`, nil, "", `"state":{"position":2,"velocity":0}`},
+		{"reset", VerbReset, `{"state": {"position": 2}, "std": {"position": 0.1, "velocity": 0.1}, "confirm": true}`, nil, "", `"applied":true,"state":{"position":2,"velocity":0}`},
 	}
 	for _, s := range steps {
 		code, data := r.request(t, s.verb, []byte(s.body), s.hdr)

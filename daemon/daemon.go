@@ -614,6 +614,9 @@ func (d *Daemon) missing() []string {
 		if e.lastTick.Load() == 0 {
 			m = append(m, "estimator "+e.name+": no tick yet")
 		}
+		if e.diverged.Load() {
+			m = append(m, "estimator "+e.name+": diverged (re-initialising)")
+		}
 	}
 	return m
 }

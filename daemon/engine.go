@@ -37,6 +37,13 @@ type EngineOptions struct {
 	Window int
 }
 
+// DivergedHold is the number of ticks a diverged lane stays diverged before
+// the engine re-initialises it from the plant's initial state and
+// covariance: long enough for every scrape, dashboard and /readyz probe to
+// see the status, short enough that the estimator is back on its own within
+// seconds at the usual tick rates.
+const DivergedHold = 10
+
 // pendingDepth is how many samples per signal wait for their tick. Newest
 // wins within one tick, so more than one is only needed when samples arrive
 // out of order or ahead of the tick they belong to.
@@ -134,6 +141,7 @@ type Engine struct {
 	p      int
 	wires  []wire             // inputs then outputs
 	states []estimator.Signal // names (x1, x2, … where the model has none) and units
+	ranges []config.Range     // of the states; HasRange false where the plant gives none
 	bySubj map[string]int
 	window int
 	met    *EstimatorMetrics
@@ -230,6 +238,8 @@ func NewEngine(plant *config.Plant, active *estimator.Prepared, opts EngineOptio
 			e.states[i].Unit = md.States[i].Unit
 		}
 	}
+	e.ranges = make([]config.Range, n)
+	copy(e.ranges, plant.StateRanges)
 	e.x0 = plant.Initial
 	if plant.InitialCov != nil {
 		e.p0 = plant.InitialCov
@@ -351,7 +361,7 @@ func (e *Engine) applyChanges() {
 	if e.resetReq.Swap(false) {
 		for _, l := range []*lane{e.active, e.cand} {
 			if l != nil {
-				l.reset(e)
+				l.reset(e.x0, e.p0)
 			}
 		}
 	}
@@ -487,14 +497,21 @@ func (e *Engine) fill(l *lane, dst *Estimate) {
 		dst.Used = l.out.Used
 	}
 
+	dst.Diverged, dst.Reinitialised = l.why, l.reinit
+	numbers := l.status != StatusDiverged
+	if !numbers {
+		dst.NIS, dst.Dof, dst.NISMean = math.NaN(), 0, math.NaN()
+	}
 	dst.States = resize(dst.States, e.n)
 	for i := range dst.States {
 		s := &dst.States[i]
 		s.Name, s.Unit = e.states[i].Name, e.states[i].Unit
-		s.Value = l.x[i]
-		s.Std = math.NaN()
-		if l.hasStd {
-			s.Std = l.std[i]
+		s.Value, s.Std = math.NaN(), math.NaN()
+		if numbers {
+			s.Value = l.x[i]
+			if l.hasStd {
+				s.Std = l.std[i]
+			}
 		}
 	}
 	dst.Inputs = resize(dst.Inputs, e.m)
@@ -516,7 +533,9 @@ func (e *Engine) fill(l *lane, dst *Estimate) {
 		o.Measured = e.y[j]
 		o.Predicted = l.yhat[j]
 		o.Innovation, o.InnovationStd = math.NaN(), math.NaN()
-		if e.present.Has(j) {
+		if !numbers {
+			o.Predicted = math.NaN()
+		} else if e.present.Has(j) {
 			// The filter reports the innovations it kept; an outlier's is
 			// worth seeing too.
 			o.Innovation = l.r[j]
@@ -584,6 +603,12 @@ type lane struct {
 	gm                 *GainsMetrics // nil without metrics, or sharing another lane's name
 	gmName             string        // the gains label of gm
 	lastNIS            float64       // NIS of the last tick that had one
+	// divergence: held counts the ticks since the lane diverged (0: it has
+	// not); why says what diverged; reinit is true on the tick the lane was
+	// re-initialised.
+	held   int
+	why    string
+	reinit bool
 }
 
 func (e *Engine) newLane(p *estimator.Prepared) *lane {
@@ -621,16 +646,31 @@ func (l *lane) use(p *estimator.Prepared) {
 	}
 }
 
-func (l *lane) reset(e *Engine) {
-	l.f.Reset(e.x0, e.p0)
+// reset restarts the lane's filter at the absolute state x with covariance
+// p0 (estimator.Filter.Reset) and empties its windows.
+func (l *lane) reset(x []float64, p0 mat.Symmetric) {
+	l.f.Reset(x, p0)
 	l.win.Reset()
 	for j := range l.rms {
 		l.rms[j].reset()
 	}
+	l.held, l.why = 0, ""
 }
 
 // step runs the lane's filter on the engine's snapshot and judges the tick.
 func (l *lane) step(e *Engine) {
+	l.reinit = false
+	if l.held > 0 {
+		// Diverged: nothing to step until the hold is over, then start
+		// again from the plant's initial condition on this tick's samples.
+		if l.held < DivergedHold {
+			l.held++
+			l.out = estimator.Outcome{}
+			return
+		}
+		l.reset(e.x0, e.p0)
+		l.reinit = true
+	}
 	l.out = l.f.Step(e.u, e.y, e.present)
 	l.f.StateTo(l.x)
 	l.hasStd = l.f.StdTo(l.std)
@@ -654,6 +694,10 @@ func (l *lane) step(e *Engine) {
 	l.mean = l.win.Mean()
 	l.lo, l.hi = e.band(l.win)
 	l.outOfBand = l.win.Len() == e.window && !(l.mean >= l.lo && l.mean <= l.hi)
+	if why := e.divergence(l); why != "" {
+		l.held, l.why, l.status = 1, why, StatusDiverged
+		return
+	}
 	switch {
 	case e.stale:
 		l.status = StatusStaleInput
@@ -664,6 +708,22 @@ func (l *lane) step(e *Engine) {
 	default:
 		l.status = StatusTracking
 	}
+}
+
+// divergence returns why lane l has diverged after its step, or "": a state
+// or its covariance is not a finite number, or a state is outside the range
+// the plant file gives it. It allocates only when the lane has diverged.
+func (e *Engine) divergence(l *lane) string {
+	if !l.f.Finite() {
+		return "the state or its covariance is not a finite number"
+	}
+	for i, v := range l.x {
+		if !e.ranges[i].Contains(v) {
+			r := e.ranges[i]
+			return fmt.Sprintf("state %s = %.6g is outside its range [%g, %g]", e.states[i].Name, v, r.Min, r.Max)
+		}
+	}
+	return ""
 }
 
 // bandCacheSize is the number of chi-square bands an engine remembers.
@@ -809,7 +869,7 @@ func (e *Engine) observe(l *lane, active bool) {
 		}
 	}
 	g := l.gm
-	if g == nil {
+	if g == nil || l.status == StatusDiverged {
 		return
 	}
 	if l.hasStd {

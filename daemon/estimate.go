@@ -33,6 +33,14 @@ type Estimate struct {
 	Used     estimator.Pattern // outputs the state was corrected with
 	Outliers estimator.Pattern // outputs the gate rejected
 	NoGain   bool              // fixed gains have no gain for the outputs present: predicted only
+
+	// Diverged says what diverged when Status is StatusDiverged; the
+	// estimate then carries no numbers (states, predicted outputs,
+	// innovations and NIS are NaN). Reinitialised is true on the tick the
+	// engine restarted the lane from the plant's initial condition after
+	// DivergedHold diverged ticks.
+	Diverged      string
+	Reinitialised bool
 }
 
 // StateEstimate is one state of an Estimate.
@@ -75,6 +83,13 @@ type OutputEstimate struct {
 //	 "outputs": {name: {"measured", "predicted", "innovation",
 //	             "innovation_std", "age", "used", "outlier", "unit"}},
 //	 "nis", "dof", "nis_mean", "nis_band": [lo, hi]}
+//
+// With the status "diverged" the object also has "diverged": what diverged
+// (a sentence), and every number the filter produced (state values and std,
+// predicted outputs, innovations, nis, nis_mean) is null: a diverged filter's
+// numbers must not be mistaken for an estimate. "reinitialised": true marks
+// the tick on which the engine restarted the filter from the plant's initial
+// condition (DivergedHold ticks after it diverged).
 func (est *Estimate) AppendJSON(dst []byte) []byte {
 	dst = append(dst, `{"time":"`...)
 	dst = est.Time.UTC().AppendFormat(dst, time.RFC3339Nano)
@@ -82,6 +97,13 @@ func (est *Estimate) AppendJSON(dst []byte) []byte {
 	dst = strconv.AppendUint(dst, est.Seq, 10)
 	dst = append(dst, `,"status":`...)
 	dst = appendString(dst, est.Status.String())
+	if est.Status == StatusDiverged {
+		dst = append(dst, `,"diverged":`...)
+		dst = appendString(dst, est.Diverged)
+	}
+	if est.Reinitialised {
+		dst = append(dst, `,"reinitialised":true`...)
+	}
 	dst = append(dst, `,"gains":`...)
 	dst = appendString(dst, est.Gains)
 	dst = append(dst, `,"fingerprint":`...)

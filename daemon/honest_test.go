@@ -4,6 +4,7 @@ import (
 	"math"
 	"math/rand/v2"
 	"os"
+	"strings"
 	"testing"
 
 	"gonum.org/v1/gonum/mat"
@@ -214,4 +215,125 @@ func TestGateCannotLockOut(t *testing.T) {
 			}
 		})
 	}
+}
+
+// divergeRun ticks the engine on a seeded simulation of the demo plant;
+// offset(k, j) is added to output j's sample of tick k.
+type divergeRun struct {
+	pl  *config.Plant
+	e   *Engine
+	sim *estimator.Plant
+	est *Estimate
+	u   []float64
+	y   []float64
+}
+
+func newDivergeRun(t *testing.T, pl *config.Plant, set string) *divergeRun {
+	gf, err := config.LoadGains(pl.GainsPath, pl)
+	if err != nil {
+		t.Fatal(err)
+	}
+	e := NewEngine(pl, engPrepare(t, pl, gf, set), EngineOptions{})
+	_, _, p := pl.Model.Dims()
+	return &divergeRun{pl: pl, e: e, sim: estimator.NewPlant(pl.Model, 5, nil), est: e.NewEstimate(),
+		u: []float64{pl.Model.U0[0]}, y: make([]float64, p)}
+}
+
+func (r *divergeRun) tick(k int, offset float64) *Estimate {
+	tk := engAt(float64(k) * r.pl.Model.Ts)
+	r.sim.Step(r.u)
+	r.sim.OutputTo(r.y)
+	r.e.Offer(0, r.u[0], tk, tk)
+	for j, v := range r.y {
+		r.e.Offer(1+j, v+offset, tk, tk)
+	}
+	r.e.Tick(tk, r.est)
+	return r.est
+}
+
+// checkDiverged checks the diverged estimate: it says so and why, carries
+// no numbers, and its JSON has nulls where the numbers were.
+func checkDiverged(t *testing.T, est *Estimate, why string) {
+	t.Helper()
+	if est.Status != StatusDiverged || !strings.Contains(est.Diverged, why) {
+		t.Fatalf("status %v (%q), want diverged saying %q", est.Status, est.Diverged, why)
+	}
+	for _, s := range est.States {
+		if !math.IsNaN(s.Value) || !math.IsNaN(s.Std) {
+			t.Errorf("diverged estimate carries %s = %v ± %v", s.Name, s.Value, s.Std)
+		}
+	}
+	js := string(est.AppendJSON(nil))
+	if !strings.Contains(js, `"status":"diverged","diverged":`) || !strings.Contains(js, `"element_temp":{"value":null,"std":null`) {
+		t.Errorf("diverged JSON %s", js)
+	}
+}
+
+// TestDivergence drives the demo engine to divergence: by resets the
+// control service would refuse (a state outside its range in the plant
+// file; a state that is not a number, as an overflow leaves it), and by a
+// sensor that sticks at an absurd value on an output without a range (the
+// gate refuses it until it releases, then element_temp leaves its range).
+// Each is diverged, without numbers, for DivergedHold ticks, then
+// re-initialised from the plant's initial condition and tracking again.
+func TestDivergence(t *testing.T) {
+	pl, err := config.LoadPlant("../testdata/plants/hotwater-loop.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, c := range []struct {
+		name, why string
+		element   float64
+	}{
+		{"reset outside the range", "state element_temp = 10000 is outside its range [0, 400]", 1e4},
+		{"reset to NaN", "not a finite number", math.NaN()},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			r := newDivergeRun(t, pl, "place-prediction")
+			for k := 0; k < 50; k++ {
+				r.tick(k, 0)
+			}
+			x := append([]float64(nil), pl.Initial...)
+			x[0] = c.element
+			r.e.enqueue(laneOp{kind: opReset, x: x})
+			k := 50
+			for ; k < 50+DivergedHold; k++ {
+				checkDiverged(t, r.tick(k, 0), c.why)
+			}
+			if est := r.tick(k, 0); est.Status == StatusDiverged || !est.Reinitialised || math.IsNaN(est.States[0].Value) {
+				t.Fatalf("tick %d, %d after diverging: status %v, reinitialised %v, element %v", k, k-50, est.Status, est.Reinitialised, est.States[0].Value)
+			}
+			if est := r.tick(k+1, 0); est.Reinitialised || est.Status != StatusTracking {
+				t.Errorf("after the re-initialisation: %v, reinitialised %v", est.Status, est.Reinitialised)
+			}
+		})
+	}
+	t.Run("sensor", func(t *testing.T) {
+		pl := *pl
+		pl.Outputs = append([]config.Wire(nil), pl.Outputs...)
+		for j := range pl.Outputs {
+			pl.Outputs[j].HasRange = false
+		}
+		r := newDivergeRun(t, &pl, "kalman-current")
+		for k := 0; k < 50; k++ {
+			r.tick(k, 0)
+		}
+		k, at := 50, -1
+		for ; k < 100 && at < 0; k++ {
+			if r.tick(k, 1e6).Status == StatusDiverged {
+				at = k
+			}
+		}
+		if at < 0 {
+			t.Fatalf("not diverged 50 ticks after a sensor stuck at 1e6: %v", r.est.Status)
+		}
+		t.Logf("diverged %d ticks after the sensor failed: %s", at-50, r.est.Diverged)
+		checkDiverged(t, r.est, "state element_temp")
+		for ; k < at+DivergedHold; k++ {
+			checkDiverged(t, r.tick(k, 0), "state element_temp")
+		}
+		if est := r.tick(k, 0); est.Status == StatusDiverged || !est.Reinitialised {
+			t.Fatalf("%d ticks after diverging: %v", k-at, est.Status)
+		}
+	})
 }

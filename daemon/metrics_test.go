@@ -90,6 +90,7 @@ surmise_state{estimator="loop",gains="kalman",state="t_heater"} 71.5
 # HELP surmise_status 1 for the status of the latest tick, 0 for the others.
 # TYPE surmise_status gauge
 surmise_status{estimator="loop",status="coasting"} 0
+surmise_status{estimator="loop",status="diverged"} 0
 surmise_status{estimator="loop",status="stale-input"} 0
 surmise_status{estimator="loop",status="suspect"} 0
 surmise_status{estimator="loop",status="tracking"} 1
@@ -123,6 +124,7 @@ surmise_tick_overruns_total{estimator="loop"} 2
 # HELP surmise_ticks_total Ticks run, by the status of the tick.
 # TYPE surmise_ticks_total counter
 surmise_ticks_total{estimator="loop",status="coasting"} 1
+surmise_ticks_total{estimator="loop",status="diverged"} 0
 surmise_ticks_total{estimator="loop",status="stale-input"} 0
 surmise_ticks_total{estimator="loop",status="suspect"} 0
 surmise_ticks_total{estimator="loop",status="tracking"} 2

@@ -36,6 +36,7 @@ type Estimator struct {
 	gainsOK atomic.Bool
 
 	lastTick atomic.Int64 // start of the latest tick (Daemon.now), 0 before the first
+	diverged atomic.Bool  // the latest tick's status is diverged
 
 	// Touched by its ticks only (the ticks of one job never overlap).
 	est       *Estimate
@@ -200,7 +201,9 @@ func (e *Estimator) tick(t Tick) {
 	e.timing = TickTiming{Lateness: t.Lateness, Compute: time.Since(t.Start), Missed: t.Missed}
 	e.metrics.ObserveTick(e.est.Status, e.timing.Lateness, e.timing.Compute, e.timing.Missed)
 	e.lastTick.Store(d.now())
-	ready := connected && e.gainsOK.Load()
+	diverged := e.est.Status == StatusDiverged
+	e.diverged.Store(diverged)
+	ready := connected && e.gainsOK.Load() && !diverged
 	if r := b2i(ready); r != e.lastReady {
 		e.metrics.SetReady(ready)
 		e.lastReady = r

@@ -128,11 +128,7 @@ func (e *Engine) applyOp(op *laneOp) {
 			if l == nil {
 				continue
 			}
-			l.f.Reset(op.x, p0)
-			l.win.Reset()
-			for j := range l.rms {
-				l.rms[j].reset()
-			}
+			l.reset(op.x, p0)
 		}
 	}
 }
@@ -279,19 +275,25 @@ func (c *Commissioner) jump() (*Jump, *CommissionError) {
 	if !a.has || !k.has || k.gains != c.cand.named.Set.Name || a.seq != k.seq {
 		return nil, refusal(CodeRefused, "the candidate %s has not run a tick yet: no state to adopt", c.cand.named.Set.Name)
 	}
-	j := &Jump{Seq: a.seq}
+	return a.jumpTo(k.x), nil
+}
+
+// jumpTo returns the jump from the lane's latest estimate to the absolute
+// state x.
+func (v *laneView) jumpTo(x []float64) *Jump {
+	j := &Jump{Seq: v.seq}
 	var sq float64
-	for i := range a.x {
-		d := k.x[i] - a.x[i]
+	for i := range v.x {
+		d := x[i] - v.x[i]
 		sq += d * d
-		s := StateJump{Name: a.names[i], Unit: a.units[i], Active: a.x[i], Candidate: k.x[i], Difference: d, Sigmas: Number(math.NaN())}
-		if sd := a.std[i]; sd > 0 {
+		s := StateJump{Name: v.names[i], Unit: v.units[i], Active: v.x[i], Candidate: x[i], Difference: d, Sigmas: Number(math.NaN())}
+		if sd := v.std[i]; sd > 0 {
 			s.Sigmas = Number(d / sd)
 		}
 		j.States = append(j.States, s)
 	}
 	j.Norm = math.Sqrt(sq)
-	return j, nil
+	return j
 }
 
 // RollbackReply is the result of a rollback request.
@@ -339,6 +341,8 @@ func (c *Commissioner) Rollback(who Origin) (*RollbackReply, error) {
 // allocates nothing.
 func (c *Commissioner) observe(act, cand *Estimate) {
 	c.obsMu.Lock()
+	was := [2]Status{c.obs[0].status, c.obs[1].status}
+	had := [2]bool{c.obs[0].has, c.obs[1].has}
 	c.obs[0].set(act)
 	if cand != nil {
 		c.obs[1].set(cand)
@@ -346,6 +350,27 @@ func (c *Commissioner) observe(act, cand *Estimate) {
 		c.obs[1].has = false
 	}
 	c.obsMu.Unlock()
+	c.divergence(act, "active", had[0] && was[0] == StatusDiverged)
+	if cand != nil {
+		c.divergence(cand, "shadow", had[1] && was[1] == StatusDiverged)
+	}
+}
+
+// divergence logs and audits a lane that has just diverged (wasDiverged is
+// false) and one the engine has just re-initialised. Both are rare; the
+// steady tick passes through without allocating.
+func (c *Commissioner) divergence(est *Estimate, lane string, wasDiverged bool) {
+	ref := SetRef{Name: est.Gains, Form: est.Form, Fingerprint: est.Fingerprint}
+	switch {
+	case est.Status == StatusDiverged && !wasDiverged:
+		note := fmt.Sprintf("%s lane diverged: %s; re-initialising from the plant's initial condition in %d ticks", lane, est.Diverged, DivergedHold)
+		c.log.Error("estimate diverged", "estimator", c.name, "lane", lane, "gains", est.Gains, "why", est.Diverged, "reinitialise_after_ticks", DivergedHold)
+		c.record(AuditEntry{Action: "diverged", Trigger: "engine", OldActive: ref, NewActive: ref, Note: note})
+	case est.Reinitialised:
+		c.log.Warn("estimator re-initialised after diverging", "estimator", c.name, "lane", lane, "gains", est.Gains)
+		c.record(AuditEntry{Action: "reinitialise", Trigger: "engine", OldActive: ref, NewActive: ref,
+			Note: lane + " lane re-initialised from the plant's initial condition after diverging"})
+	}
 }
 
 func (v *laneView) set(est *Estimate) {

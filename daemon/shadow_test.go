@@ -331,7 +331,8 @@ func TestPromoteRefusals(t *testing.T) {
 
 // TestReset resets the state and refuses malformed requests.
 func TestReset(t *testing.T) {
-	r := newCMRig(t, cmRigOptions{active: "fast", seed: 5})
+	r := newCMRig(t, cmRigOptions{active: "fast", seed: 5,
+		repl: []string{"{name: position, unit: m, nominal: 1}", "{name: position, unit: m, nominal: 1, range: [-100, 100]}"}})
 	for k := 0; k < 20; k++ {
 		r.tick()
 	}
@@ -342,6 +343,7 @@ func TestReset(t *testing.T) {
 	}{
 		{"unknown state", ResetRequest{State: map[string]float64{"speed": 1}}, `state "speed": no such state`},
 		{"not finite", ResetRequest{State: map[string]float64{"position": math.Inf(1)}}, "not a finite number"},
+		{"outside the range", ResetRequest{State: map[string]float64{"position": 1.7e308}, Confirm: true}, `state "position": 1.7e+308 is outside its range [-100, 100]`},
 		{"std missing a state", ResetRequest{Std: map[string]float64{"position": 1}}, "missing velocity"},
 		{"std not positive", ResetRequest{Std: map[string]float64{"position": 1, "velocity": 0}}, "want a finite positive number"},
 		{"std and covariance", ResetRequest{Std: map[string]float64{"position": 1, "velocity": 1}, Covariance: [][]float64{{1, 0}, {0, 1}}}, "not both"},
@@ -357,9 +359,26 @@ func TestReset(t *testing.T) {
 			}
 		})
 	}
-	rep, err := r.c.Reset(ResetRequest{State: map[string]float64{"position": 5}, Std: map[string]float64{"position": 0.5, "velocity": 0.2}}, Origin{})
+	req := ResetRequest{State: map[string]float64{"position": 5}, Std: map[string]float64{"position": 0.5, "velocity": 0.2}}
+	// Without confirm: the jump from the latest estimate, nothing changes.
+	shown, err := r.c.Reset(req, Origin{})
 	if err != nil {
 		t.Fatal(err)
+	}
+	if shown.Applied || shown.Jump == nil || shown.Jump.States[0].Candidate != 5 ||
+		shown.Jump.States[0].Difference != 5-r.est.States[0].Value {
+		t.Fatalf("unconfirmed reset %+v", shown)
+	}
+	if tail := r.audit.Tail("cart", 1); len(tail) == 1 && tail[0].Action == "reset" {
+		t.Fatalf("an unconfirmed reset was audited: %+v", tail)
+	}
+	req.Confirm = true
+	rep, err := r.c.Reset(req, Origin{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !rep.Applied {
+		t.Fatalf("confirmed reset not applied: %+v", rep)
 	}
 	if rep.State["position"] != 5 || rep.State["velocity"] != 0 {
 		t.Errorf("reply state %v", rep.State)

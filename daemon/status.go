@@ -11,7 +11,8 @@ const (
 	StatusTracking   Status = iota // "tracking": corrected with at least one fresh measurement
 	StatusCoasting                 // "coasting": no fresh measurement; predicted only
 	StatusStaleInput               // "stale-input": an input was older than its max_age
-	StatusSuspect                  // "suspect": the windowed NIS is outside its chi-square band
+	StatusSuspect                  // "suspect": the windowed NIS is outside its chi-square band, or the gate refuses everything
+	StatusDiverged                 // "diverged": the state or its covariance is not finite, or a state left its range
 	numStatuses
 )
 
@@ -20,6 +21,7 @@ var statusNames = [numStatuses]string{
 	StatusCoasting:   "coasting",
 	StatusStaleInput: "stale-input",
 	StatusSuspect:    "suspect",
+	StatusDiverged:   "diverged",
 }
 
 // String returns the label value of s, or "Status(n)" for a value outside

@@ -46,7 +46,9 @@ Verbs:
   rollback            make the previous active set active again
   reset               restart the state at the operating point, or at
                       --state NAME=VALUE (repeat; others at the operating
-                      point) with --std NAME=VALUE for every state
+                      point, each inside its range in the plant file) with
+                      --std NAME=VALUE for every state: the first call shows
+                      the jump and changes nothing, --yes applies it
 
 Exit status: 0 done (or shown), 1 refused or no answer, 2 usage.`
 
@@ -79,7 +81,7 @@ func runCtl(ctx context.Context, e *env, args []string) error {
 	flags.StringVar(&f.candidate, "candidate", "", "load: run the set `NAME` in shadow instead of the file's candidate")
 	flags.BoolVar(&f.noCandidate, "no-candidate", false, "load: run no candidate")
 	flags.BoolVar(&f.adopt, "adopt-state", false, "promote: take the candidate's state (the estimate jumps) instead of keeping the active state")
-	flags.BoolVar(&f.yes, "yes", false, "promote --adopt-state: apply it (without, the jump is shown and nothing changes)")
+	flags.BoolVar(&f.yes, "yes", false, "promote --adopt-state, reset: apply it (without, the jump is shown and nothing changes)")
 	flags.Var(&f.state, "state", "reset: `NAME=VALUE`, an absolute state value (repeat)")
 	flags.Var(&f.std, "std", "reset: `NAME=VALUE`, a state's standard deviation (repeat, for every state)")
 	pos, err := parseArgs(flags, args)
@@ -97,7 +99,7 @@ func runCtl(ctx context.Context, e *env, args []string) error {
 		daemon.VerbLoad:     {"set", "candidate", "no-candidate"},
 		daemon.VerbPromote:  {"adopt-state", "yes"},
 		daemon.VerbRollback: nil,
-		daemon.VerbReset:    {"state", "std"},
+		daemon.VerbReset:    {"state", "std", "yes"},
 	}
 	own, known := allowed[verb]
 	if !known {
@@ -108,7 +110,7 @@ func runCtl(ctx context.Context, e *env, args []string) error {
 			return usageError("--%s does not go with %s", fl, verb)
 		}
 	}
-	if f.yes && !f.adopt {
+	if f.yes && verb == daemon.VerbPromote && !f.adopt {
 		return usageError("--yes confirms --adopt-state; a keep-state promotion needs no confirmation")
 	}
 	if f.noCandidate && f.candidate != "" {
@@ -154,6 +156,7 @@ func runCtl(ctx context.Context, e *env, args []string) error {
 		if req.Std, err = ctlNameValues("--std", f.std); err != nil {
 			return err
 		}
+		req.Confirm = f.yes
 		msg.Data, _ = json.Marshal(req)
 	}
 
@@ -271,7 +274,7 @@ func ctlPrintReply(w io.Writer, verb string, data []byte) error {
 			return err
 		}
 		if r.Jump != nil {
-			ctlPrintJump(w, r.Jump)
+			ctlPrintJump(w, r.Jump, "candidate")
 		}
 		if !r.Applied {
 			fmt.Fprintf(w, "not applied: adopting %s's state moves the estimate by %s (above); run again with --yes to apply\n", r.Active.Name, fnum(r.Jump.Norm))
@@ -288,6 +291,17 @@ func ctlPrintReply(w io.Writer, verb string, data []byte) error {
 		var r daemon.ResetReply
 		if err := decode(&r); err != nil {
 			return err
+		}
+		if r.Jump != nil {
+			ctlPrintJump(w, r.Jump, "reset")
+		}
+		if !r.Applied {
+			if r.Jump != nil {
+				fmt.Fprintf(w, "not applied: the reset moves the estimate by %s (above); run again with --yes to apply\n", fnum(r.Jump.Norm))
+			} else {
+				fmt.Fprintln(w, "not applied (no estimate to compare with yet); run again with --yes to apply")
+			}
+			return nil
 		}
 		names := make([]string, 0, len(r.State))
 		for n := range r.State {
@@ -390,10 +404,12 @@ func ctlPrintStatus(w io.Writer, r *daemon.StatusReply) {
 	}
 }
 
-func ctlPrintJump(w io.Writer, j *daemon.Jump) {
-	fmt.Fprintf(w, "jump at tick #%d: ‖x̂_candidate − x̂_active‖ = %s\n", j.Seq, fnum(j.Norm))
+// ctlPrintJump prints the jump from the active estimate to to (the
+// candidate's estimate, or the state of a reset).
+func ctlPrintJump(w io.Writer, j *daemon.Jump, to string) {
+	fmt.Fprintf(w, "jump at tick #%d: ‖x̂_%s − x̂_active‖ = %s\n", j.Seq, to, fnum(j.Norm))
 	tw := tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)
-	fmt.Fprintln(tw, "  state\tunit\tactive\tcandidate\tdifference\tin active σ")
+	fmt.Fprintf(tw, "  state\tunit\tactive\t%s\tdifference\tin active σ\n", to)
 	for _, s := range j.States {
 		fmt.Fprintf(tw, "  %s\t%s\t%s\t%s\t%s\t%s\n", s.Name, s.Unit, fnum(s.Active), fnum(s.Candidate), fnum(s.Difference), ctlNum(s.Sigmas))
 	}

@@ -234,7 +234,9 @@ func TestCtlEndToEnd(t *testing.T) {
 			t.Errorf("ctl %s: exit %d, stderr %q; want 1 and %q", strings.Join(r.args, " "), code, errOut, r.want)
 		}
 	}
-	c.mustCtl(t, []string{"reset:", "position=5", "velocity=0"}, "cart", "reset", "--state", "position=5")
+	// A reset first shows the jump and changes nothing; --yes applies it.
+	c.mustCtl(t, []string{"jump at tick", "reset", "not applied", "--yes"}, "cart", "reset", "--state", "position=5")
+	c.mustCtl(t, []string{"reset:", "position=5", "velocity=0"}, "cart", "reset", "--state", "position=5", "--yes")
 
 	// The audit trail: in the status and, line by line, in the state
 	// directory.

@@ -2,15 +2,16 @@
 // Event from /events, drawn with uPlot. Plain script, no build step, nothing from the network.
 'use strict';
 (function () {
-  // The four statuses of a tick (DESIGN.md §3), each with a colour, a word, a shape and a level
+  // The five statuses of a tick (DESIGN.md §3), each with a colour, a word, a shape and a level
   // (its height in the status strip), so that no status is told by colour alone.
   const STATUS = {
     'tracking': { level: 1, color: '#1b7a3a', word: 'tracking', shape: 'circle', say: 'corrected with fresh measurements' },
     'coasting': { level: 2, color: '#a35a00', word: 'coasting', shape: 'diamond', say: 'no fresh measurement: predicting only' },
     'suspect': { level: 3, color: '#b3202a', word: 'suspect', shape: 'triangle', say: 'windowed NIS outside its 95 % band' },
     'stale-input': { level: 4, color: '#5a37b8', word: 'stale input', shape: 'square', say: 'an input is older than its max_age' },
+    'diverged': { level: 5, color: '#000000', word: 'diverged', shape: 'cross', say: 'the state is not finite or left its range: no estimate' },
   };
-  const STATUS_ORDER = ['tracking', 'coasting', 'suspect', 'stale-input'];
+  const STATUS_ORDER = ['tracking', 'coasting', 'suspect', 'stale-input', 'diverged'];
   const INK = '#0e1116', GRID = '#e0e3da', BAND = 'rgba(13, 79, 86, 0.13)';
   const C = { // series colours
     main: '#0d4f56', second: '#c2410c', cand: '#7c3aed', meas: '#111827', reject: '#b3202a',
@@ -90,6 +91,9 @@
         target.append(svg('path', { d: 'M20 3.5L37 35H3z', ...s }), svg('path', { d: 'M20 14v10', ...s }),
           svg('circle', { cx: 20, cy: 29.5, r: 1.6, fill: '#fff' }));
         break;
+      case 'cross': // a crossed ring: no estimate
+        target.append(svg('circle', { cx: 20, cy: 20, r: 16.5, ...s }), svg('path', { d: 'M12 12l16 16M28 12L12 28', ...s }));
+        break;
       case 'square': // a square with a clock: an old input
         target.append(svg('rect', { x: 3, y: 3, width: 34, height: 34, rx: 2, ...s }), svg('circle', { cx: 20, cy: 20, r: 10, ...s }),
           svg('path', { d: 'M20 13.5V20l4.5 3', ...s }));
@@ -102,7 +106,7 @@
   // ---- the store: one column per plotted or shown quantity, oldest first ----
   function newStore(info) {
     const cols = { t: [], seq: [], status: [], gains: [], cgains: [], nis: [], mean: [], lo: [], hi: [], cnis: [], cmean: [], clo: [], chi: [], late: [], compute: [], missed: [] };
-    for (let k = 0; k < 4; k++) cols['lvl' + k] = [];
+    for (let k = 0; k < STATUS_ORDER.length; k++) cols['lvl' + k] = [];
     info.outputs.forEach((_, j) => {
       for (const c of ['meas', 'pred', 'inn', 'std', 'up', 'dn', 'age', 'flags', 'gate', 'cpred', 'cinn', 'cflags']) cols['o' + j + c] = [];
     });
@@ -120,7 +124,7 @@
     c.late.push(r.late == null ? null : r.late * 1000); c.compute.push(r.compute == null ? null : r.compute * 1000);
     c.missed.push(r.missed);
     const lvl = (STATUS[r.status] || {}).level;
-    for (let k = 0; k < 4; k++) c['lvl' + k].push(lvl === k + 1 ? lvl : null);
+    for (let k = 0; k < STATUS_ORDER.length; k++) c['lvl' + k].push(lvl === k + 1 ? lvl : null);
     const cd = r.cand;
     c.cgains.push(cd ? cd.gains : null);
     c.cnis.push(cd ? cd.nis : null); c.cmean.push(cd ? cd.nis_mean : null);
@@ -295,10 +299,10 @@
       paths: uPlot.paths.bars({ size: [1, Infinity], gap: 0 }), points: { show: false },
     }));
     const ax = axisY('', 96);
-    ax.splits = () => [1, 2, 3, 4];
+    ax.splits = () => STATUS_ORDER.map((_, k) => k + 1);
     ax.values = (u, splits) => splits.map((v) => names[v - 1] || '');
     ax.grid = { show: false };
-    return { key: 'status', unit: '', series, yRange: [0, 4.6], axisY: ax, live: false };
+    return { key: 'status', unit: '', series, yRange: [0, STATUS_ORDER.length + 0.6], axisY: ax, live: false };
   }
 
   // onScale hears every change of a chart's time scale; one made by a drag across the chart is a

@@ -195,6 +195,9 @@ func tableSections(in *Input, sums []Summary) []tableSection {
 	if any(func(s *Summary) int { return s.Suspect }) {
 		ticks.Rows = append(ticks.Rows, row("suspect", "", plain(func(s *Summary) string { return count(s.Suspect, s.Ticks) })))
 	}
+	if any(func(s *Summary) int { return s.Diverged }) {
+		ticks.Rows = append(ticks.Rows, row("diverged", "", plain(func(s *Summary) string { return count(s.Diverged, s.Ticks) })))
+	}
 	if any(func(s *Summary) int { return s.Other }) {
 		ticks.Rows = append(ticks.Rows, row("other status", "", plain(func(s *Summary) string { return count(s.Other, s.Ticks) })))
 	}

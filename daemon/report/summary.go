@@ -24,7 +24,7 @@ type Summary struct {
 	Start, End time.Time
 
 	// Ticks by status; Other counts status words not listed here.
-	Tracking, Coasting, StaleInput, Suspect, Other int
+	Tracking, Coasting, StaleInput, Suspect, Diverged, Other int
 
 	Outliers int // samples rejected by the gate
 
@@ -110,6 +110,8 @@ func summariseRun(in *Input, r *Run, bands *nisBands) Summary {
 			s.StaleInput++
 		case "suspect":
 			s.Suspect++
+		case "diverged":
+			s.Diverged++
 		default:
 			s.Other++
 		}
