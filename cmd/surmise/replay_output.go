@@ -80,7 +80,7 @@ func newEstimateCSV(path string, plant *config.Plant, truth *daemon.TruthCursor)
 	h = append(h, "nis", "dof", "nis_mean", "outliers")
 	if truth != nil {
 		for i := 0; i < n; i++ {
-			h = append(h, daemon.TruthColumn(stateName(plant, i)))
+			h = append(h, config.TruthColumn(stateName(plant, i)))
 		}
 	}
 	c.w.WriteString(strings.Join(h, ",") + "\n")
