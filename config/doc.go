@@ -59,6 +59,10 @@
 //	    subject: pilot.hwl.jc100.out  # required: where samples arrive; dot-separated tokens,
 //	                             # no wildcards (* >) or spaces, unique in the file
 //	    max_age: 5s              # optional: older samples are stale; default 3 sample periods
+//	    max_delay: 3s            # optional: a sample received after its tick ran is still fused
+//	                             # at its own time while that tick is at most this old (the
+//	                             # engine re-runs from it); older ones are refused as late.
+//	                             # Default 3 sample periods; at most 100000 sample periods
 //	    range: [0, 9]            # optional: [lo, hi], lo < hi, holding nominal; samples
 //	                             # outside are rejected
 //	outputs:                     # required, in the order of C's rows; keys as for inputs

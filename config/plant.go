@@ -21,6 +21,15 @@ const (
 	DefaultWindow = 100
 	// DefaultMaxAgeTicks is the default max_age of a signal, in sample periods.
 	DefaultMaxAgeTicks = 3
+	// DefaultMaxDelayTicks is the default max_delay of a signal, in sample
+	// periods: enough that a sample stamped just before a tick and received
+	// just after it is fused at its own tick without any configuration.
+	DefaultMaxDelayTicks = 3
+	// MaxDelayTicks is the largest delay horizon, in sample periods: the
+	// engine keeps the state and covariance of every tick of the horizon to
+	// re-run from, so the horizon is memory (and the re-run of a sample at
+	// its edge is this many ticks of compute).
+	MaxDelayTicks = 100000
 	// PublishRoot is the first token of the default publish prefix
 	// "surmise.<name>".
 	PublishRoot = "surmise"
@@ -132,6 +141,12 @@ type Wire struct {
 	// MaxAge is the age beyond which a sample is stale (key `max_age`, a
 	// duration such as "3s"); default DefaultMaxAgeTicks sample periods.
 	MaxAge time.Duration
+	// MaxDelay is the delay horizon (key `max_delay`, a duration; default
+	// DefaultMaxDelayTicks sample periods; at most MaxDelayTicks): a sample
+	// that arrives after its tick has run is still fused at its own time
+	// while that tick is no more than MaxDelay before the newest tick; older
+	// ones are refused as late.
+	MaxDelay time.Duration
 	// Min and Max are the valid range (key `range: [lo, hi]`), meaningful
 	// when HasRange; samples outside it are rejected.
 	Min, Max float64
@@ -222,6 +237,8 @@ type rawSignal struct {
 	subjectNode *yaml.Node
 	maxAge      time.Duration
 	maxAgeNode  *yaml.Node
+	maxDelay    time.Duration
+	delayNode   *yaml.Node
 	lo, hi      float64
 	rangeNode   *yaml.Node
 	rangeOK     bool
@@ -391,6 +408,14 @@ func (r *rawPlant) walkSignals(d *decoder, v *yaml.Node, p, kind string) []*rawS
 						}
 					}
 				}},
+				field{"max_delay", false, func(v *yaml.Node, p string) {
+					if t, ok := d.duration(v, p); ok {
+						s.maxDelay, s.delayNode = t, v
+						if t < 0 {
+							d.errorf(v, p, "%v, want a duration ≥ 0", t)
+						}
+					}
+				}},
 			)
 		}
 		fields = append(fields, field{"range", false, func(v *yaml.Node, p string) {
@@ -526,6 +551,16 @@ func (r *rawPlant) check(d *decoder) {
 		if md.time == "continuous" && md.sample > 0 {
 			r.checkExponent(d)
 		}
+		if md.sample > 0 {
+			for _, list := range [][]*rawSignal{r.inputs, r.outputs} {
+				for _, s := range list {
+					if s.delayNode != nil && s.maxDelay/md.sample > MaxDelayTicks {
+						d.errorf(s.delayNode, join(s.path, "max_delay"), "%v is %d sample periods of %v; the engine keeps every tick of the delay horizon to re-run from, at most %d",
+							s.maxDelay, s.maxDelay/md.sample, md.sample, MaxDelayTicks)
+					}
+				}
+			}
+		}
 		if md.time == "discrete" && r.process != nil && r.process.time == "continuous" {
 			d.errorf(r.process.timeNode, "noise.process.time", "a discrete model takes its process noise as a covariance per sample: want discrete")
 		}
@@ -637,6 +672,10 @@ func (r *rawPlant) build(filename string) (*Plant, error) {
 				Min: s.lo, Max: s.hi, HasRange: s.rangeOK}
 			if s.maxAgeNode == nil {
 				w.MaxAge = DefaultMaxAgeTicks * md.sample
+			}
+			w.MaxDelay = s.maxDelay
+			if s.delayNode == nil {
+				w.MaxDelay = DefaultMaxDelayTicks * md.sample
 			}
 			*list.wire = append(*list.wire, w)
 		}

@@ -94,7 +94,8 @@ func TestHotWaterLoop(t *testing.T) {
 	if got := cont.Model.States[3]; got != (estimator.Signal{Name: "heat_loss", Unit: "kW"}) {
 		t.Errorf("state 3 = %+v", got)
 	}
-	want := Wire{Signal: "tank_outlet", Unit: "degC", Subject: "pilot.hwl.tt110.pv", MaxAge: 3 * time.Second, Min: 0, Max: 99, HasRange: true}
+	// max_delay is not given: DefaultMaxDelayTicks sample periods.
+	want := Wire{Signal: "tank_outlet", Unit: "degC", Subject: "pilot.hwl.tt110.pv", MaxAge: 3 * time.Second, MaxDelay: 3 * time.Second, Min: 0, Max: 99, HasRange: true}
 	if cont.Outputs[0] != want {
 		t.Errorf("output 0 wired %+v, want %+v", cont.Outputs[0], want)
 	}
