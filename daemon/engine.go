@@ -122,6 +122,7 @@ func (sl *slot) take(t time.Time) bool {
 type wire struct {
 	name, unit, subject string
 	maxAge              time.Duration // 0: no limit (config always sets one)
+	maxDelay            time.Duration // delay horizon of a late sample (late.go)
 	min, max            float64
 	hasRange            bool
 }
@@ -147,9 +148,11 @@ type Engine struct {
 	met    *EstimatorMetrics
 
 	mu       sync.Mutex
-	slots    []slot    // guarded by mu
-	lastTick time.Time // guarded by mu: time of the last Tick
-	ticked   bool      // guarded by mu
+	slots    []slot       // guarded by mu
+	lastTick time.Time    // guarded by mu: time of the last Tick
+	ticked   bool         // guarded by mu
+	lateQ    []lateSample // guarded by mu: samples of ticks that have run, for the next tick to place
+	lateQN   int          // guarded by mu
 
 	// Changes requested between ticks, applied at the start of the next.
 	nextActive atomic.Pointer[estimator.Prepared]
@@ -172,6 +175,17 @@ type Engine struct {
 	active      *lane
 	cand        *lane
 	bands       [bandCacheSize]bandEntry // tick goroutine only
+
+	// Late samples (late.go), tick goroutine only: the ring of past ticks,
+	// the first tick a re-run may start from, and the late samples taken
+	// from lateQ for this tick.
+	past    []pastTick
+	floor   uint64
+	lateBuf []lateSample
+	lateN   int
+	// per signal, this tick: late samples fused at their own tick, and
+	// refused as late (beyond max_delay)
+	lateFused, lateRefused []int
 }
 
 // candidateChange is a request to replace (prep != nil) or remove the
@@ -218,7 +232,7 @@ func NewEngine(plant *config.Plant, active *estimator.Prepared, opts EngineOptio
 		for _, w := range ws {
 			i := len(e.wires)
 			e.wires = append(e.wires, wire{
-				name: w.Signal, unit: w.Unit, subject: w.Subject, maxAge: w.MaxAge,
+				name: w.Signal, unit: w.Unit, subject: w.Subject, maxAge: w.MaxAge, maxDelay: w.MaxDelay,
 				min: w.Min, max: w.Max, hasRange: w.HasRange,
 			})
 			if w.Subject == "" {
@@ -245,6 +259,19 @@ func NewEngine(plant *config.Plant, active *estimator.Prepared, opts EngineOptio
 		e.p0 = plant.InitialCov
 	}
 	e.fingerprint = config.Fingerprint(md)
+	var horizon time.Duration
+	for _, w := range e.wires {
+		horizon = max(horizon, w.maxDelay)
+	}
+	e.past = make([]pastTick, horizonTicks(horizon, md.Ts)+2)
+	for i := range e.past {
+		e.past[i] = pastTick{u: make([]float64, m), y: make([]float64, p),
+			uAt: make([]time.Time, m), yAt: make([]time.Time, p)}
+	}
+	e.floor = 1
+	e.lateQ = make([]lateSample, 4*(m+p)+16)
+	e.lateBuf = make([]lateSample, len(e.lateQ))
+	e.lateFused, e.lateRefused = make([]int, m+p), make([]int, m+p)
 	e.active = e.newLane(active)
 	if e.met != nil {
 		// BindMetrics bound the active set's series already.
@@ -283,8 +310,14 @@ func (e *Engine) SignalIndex(subject string) (int, bool) {
 //
 // It reports ok when the sample was accepted, else why it was refused:
 // ReasonNaN (NaN or ±Inf), ReasonRange (outside the signal's valid range),
-// ReasonLate (an output sample whose time is not after the last tick: it
-// belongs to a tick that has already run) or ReasonUnknown (no such signal).
+// ReasonLate (an output sample whose time is not after the last tick, when
+// the queue of such samples is full) or ReasonUnknown (no such signal).
+//
+// A sample whose time is not after the last tick belongs to a tick that has
+// already run: it is queued for the next tick, which fuses it at its own
+// time by re-running from there (late.go) while that tick lies within the
+// signal's max_delay, and otherwise refuses it as late and counts it then.
+// An input sample also goes on to be held from the next tick on.
 // Refused samples are counted and never used; a sample accepted now can
 // still be counted stale by the tick that takes it. Offer allocates nothing
 // and may be called from any goroutine.
@@ -305,13 +338,25 @@ func (e *Engine) Offer(signal int, value float64, sampleTime, recvTime time.Time
 	if sampleTime.IsZero() || sampleTime.After(recvTime) {
 		sampleTime = recvTime
 	}
+	smp := sample{value: value, at: sampleTime, recv: recvTime}
 	e.mu.Lock()
-	if signal >= e.m && e.ticked && !sampleTime.After(e.lastTick) {
-		e.mu.Unlock()
-		e.countRejected(signal, ReasonLate)
-		return ReasonLate, false
+	if e.ticked && !sampleTime.After(e.lastTick) {
+		// Its tick has run: the next tick places it (late.go).
+		queued := e.lateQN < len(e.lateQ)
+		if queued {
+			e.lateQ[e.lateQN] = lateSample{signal: signal, sample: smp}
+			e.lateQN++
+		}
+		if signal >= e.m {
+			e.mu.Unlock()
+			if !queued {
+				e.countRejected(signal, ReasonLate)
+				return ReasonLate, false
+			}
+			return 0, true
+		}
 	}
-	e.slots[signal].push(sample{value: value, at: sampleTime, recv: recvTime})
+	e.slots[signal].push(smp)
 	e.mu.Unlock()
 	return 0, true
 }
@@ -345,6 +390,10 @@ func (e *Engine) Reset() { e.resetReq.Store(true) }
 // applyChanges applies, between ticks, what UseGains, SetCandidate and Reset
 // asked for.
 func (e *Engine) applyChanges() {
+	if e.ops.pending.Load() || e.nextActive.Load() != nil || e.nextCand.Load() != nil || e.resetReq.Load() {
+		// A re-run never crosses a change of the lanes (late.go).
+		e.floor = e.seq + 1
+	}
 	e.applyOps()
 	if p := e.nextActive.Swap(nil); p != nil {
 		e.active.use(p)
@@ -411,6 +460,8 @@ func (e *Engine) Tick(t time.Time, dst *Estimate) {
 		e.snap[i] = taken{cur: sl.cur, has: sl.has, fresh: fresh}
 	}
 	e.lastTick, e.ticked = t, true
+	e.lateN = copy(e.lateBuf, e.lateQ[:e.lateQN])
+	e.lateQN = 0
 	e.mu.Unlock()
 
 	// 1. Inputs, zero-order hold.
@@ -444,10 +495,22 @@ func (e *Engine) Tick(t time.Time, dst *Estimate) {
 		e.y[j] = s.cur.value
 		e.present |= 1 << uint(j)
 	}
+	// Late samples into their ticks, and the re-run from the earliest.
+	rerun := e.placeLate(t)
+	if rerun != 0 {
+		e.rerun(rerun)
+	}
+	e.record()
 	// 3. Step every lane on the same snapshot.
-	e.active.step(e)
-	if e.cand != nil {
-		e.cand.step(e)
+	for _, l := range []*lane{e.active, e.cand} {
+		if l == nil {
+			continue
+		}
+		l.tick(e, rerun != 0)
+		if l.reinit || l.held == 1 {
+			// A re-run never crosses a divergence (late.go).
+			e.floor = e.seq + 1
+		}
 	}
 	// 4 and 5.
 	e.fill(e.active, dst)
@@ -520,6 +583,7 @@ func (e *Engine) fill(l *lane, dst *Estimate) {
 		in.Name, in.Unit = e.wires[i].name, e.wires[i].unit
 		in.Value = e.u[i]
 		in.Stale = e.inStale[i]
+		in.Late, in.TooLate = e.lateFused[i], e.lateRefused[i]
 		in.Age = math.NaN()
 		if e.snap[i].has {
 			in.Age = e.now.Sub(e.snap[i].cur.at).Seconds()
@@ -546,6 +610,7 @@ func (e *Engine) fill(l *lane, dst *Estimate) {
 				o.InnovationStd = math.Sqrt(v)
 			}
 		}
+		o.Late, o.TooLate = e.lateFused[i], e.lateRefused[i]
 		o.Used = dst.Used.Has(j)
 		o.Outlier = l.out.Outliers.Has(j)
 		o.Stale = e.fresh.Has(j) && !e.present.Has(j)

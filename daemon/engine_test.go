@@ -221,6 +221,7 @@ func TestEngineMeasurements(t *testing.T) {
 		after  [][]off      // after[k] are made after tick k (late arrivals)
 		wantY  [][2]float64 // measurement used at each tick, NaN: missing
 		stale  [2]int       // samples of each output expected to be counted stale
+		late   [2]int       // samples of each output expected to be refused as late by a tick
 	}{{
 		name:   "slow sensor is missing between its samples",
 		maxAge: 5 * time.Second,
@@ -247,10 +248,13 @@ func TestEngineMeasurements(t *testing.T) {
 		}},
 		wantY: [][2]float64{{nan, nan}, {10.7, nan}, {nan, nan}},
 	}, {
-		name:   "a sample dated before the previous tick is late",
+		// The plant gives no max_delay (0): a sample of a tick that has
+		// run is accepted by Offer and refused as late by the next tick.
+		name:   "a sample dated before the previous tick, beyond max_delay, is late",
 		maxAge: 5 * time.Second,
-		after:  [][]off{nil, {{engOffer{1, 10.9, 0.9, 1.2}, ReasonLate}, {engOffer{2, 20.9, 1, 1.1}, ReasonLate}}},
+		after:  [][]off{nil, {{engOffer{1, 10.9, 0.9, 1.2}, engAccepted}, {engOffer{2, 20.9, 1, 1.1}, engAccepted}}},
 		wantY:  [][2]float64{{nan, nan}, {nan, nan}, {nan, nan}},
+		late:   [2]int{1, 1},
 	}, {
 		name:   "a sample older than max_age at the tick is stale",
 		maxAge: 250 * time.Millisecond,
@@ -312,6 +316,8 @@ func TestEngineMeasurements(t *testing.T) {
 			}
 			rejected[1][ReasonStale] += c.stale[0]
 			rejected[2][ReasonStale] += c.stale[1]
+			rejected[1][ReasonLate] += c.late[0]
+			rejected[2][ReasonLate] += c.late[1]
 			defer func() {
 				for i, name := range []string{"power", "ya", "yb"} {
 					labels := map[string]string{"estimator": "test", "signal": name}

@@ -56,6 +56,10 @@ type InputValue struct {
 	Value      float64 // held sample, or the operating point if never received
 	Age        float64 // seconds since the held sample's time; NaN if never received
 	Stale      bool    // never received, or older than max_age
+	// Late counts the samples of this input that arrived after their tick
+	// had run and that this tick placed at their own time (re-running from
+	// there); TooLate those it refused as late, beyond max_delay.
+	Late, TooLate int
 }
 
 // OutputEstimate is one output of an Estimate.
@@ -70,6 +74,10 @@ type OutputEstimate struct {
 	Outlier       bool    // rejected by the gate
 	Stale         bool    // a sample arrived for this tick but older than max_age
 	Received      time.Time
+	// Late counts the samples of this output that arrived after their tick
+	// had run and that this tick fused at their own tick (re-running from
+	// there); TooLate those it refused as late, beyond max_delay.
+	Late, TooLate int
 }
 
 // AppendJSON appends the estimate as one JSON object to dst and returns the

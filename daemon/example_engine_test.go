@@ -42,15 +42,24 @@ func ExampleEngine() {
 		e.Tick(t, est)
 		fmt.Printf("tick %d %s, corrected with %d output(s), element %.2f %s\n",
 			est.Seq, est.Status, est.Used.Len(), est.States[0].Value, est.States[0].Unit)
+		if k == 1 {
+			// The exchanger's sample of tick 2 arrives 50 ms after that
+			// tick ran: the next tick fuses it at its own time, re-running
+			// tick 2 with it (its max_delay is the default three periods).
+			if _, ok := e.Offer(hx, 54.38, t.Add(-100*time.Millisecond), t.Add(50*time.Millisecond)); ok {
+				fmt.Println("a sample of a tick that has run is accepted")
+			}
+		}
 	}
-	if _, ok := e.Offer(hx, 54.4, t0.Add(1500*time.Millisecond), t0.Add(2100*time.Millisecond)); !ok {
-		fmt.Println("a sample dated before the last tick is refused")
+	if _, ok := e.Offer(hx, 54.4, t0.Add(-time.Hour), t0.Add(2100*time.Millisecond)); ok {
+		fmt.Println("an hour late, beyond max_delay: accepted now, refused as late by the next tick")
 	}
 	fmt.Printf("%.60s…\n", est.AppendJSON(nil))
 	// Output:
 	// tick 1 tracking, corrected with 2 output(s), element 91.20 degC
 	// tick 2 tracking, corrected with 1 output(s), element 91.46 degC
+	// a sample of a tick that has run is accepted
 	// tick 3 tracking, corrected with 2 output(s), element 91.67 degC
-	// a sample dated before the last tick is refused
+	// an hour late, beyond max_delay: accepted now, refused as late by the next tick
 	// {"time":"2025-03-01T12:00:02Z","seq":3,"status":"tracking","…
 }

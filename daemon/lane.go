@@ -33,6 +33,30 @@ type lane struct {
 	held   int
 	why    string
 	reinit bool
+
+	// For re-runs (late.go): states[seq % len] is the filter before the
+	// step of tick seq; hist[seq % len] what that tick gave the windows, and
+	// histR its innovations (p per entry). The windows hold contributions of
+	// ticks from winFrom on (they were emptied before it); emptied is set
+	// when they are emptied between ticks, until the next tick sets winFrom.
+	states  []*estimator.FilterState
+	hist    []contribution
+	histR   []float64
+	winFrom uint64
+	emptied bool
+	// lateFused is true when this tick's re-run corrected the tick its late
+	// sample belongs to: the estimate has used a measurement since the
+	// previous tick, so the tick is not coasting even when its own step
+	// only predicted.
+	lateFused bool
+}
+
+// contribution is what one tick gave a lane's windows.
+type contribution struct {
+	seq  uint64
+	nis  float64 // estimator.Outcome.GateNIS
+	dof  int     // 0: nothing for the NIS window
+	used estimator.Pattern
 }
 
 func (e *Engine) newLane(p *estimator.Prepared) *lane {
@@ -51,6 +75,13 @@ func (e *Engine) newLane(p *estimator.Prepared) *lane {
 	l.f = estimator.NewFilter(p, e.x0, e.p0)
 	l.setPrepared(p)
 	l.lastNIS = math.NaN()
+	l.states = make([]*estimator.FilterState, len(e.past))
+	for i := range l.states {
+		l.states[i] = l.f.NewState()
+	}
+	l.hist = make([]contribution, e.window+len(e.past))
+	l.histR = make([]float64, len(l.hist)*e.p)
+	l.winFrom = e.seq + 1
 	return l
 }
 
@@ -64,26 +95,35 @@ func (l *lane) setPrepared(p *estimator.Prepared) {
 func (l *lane) use(p *estimator.Prepared) {
 	l.f.Use(p)
 	l.setPrepared(p)
+	l.emptyWindows()
+}
+
+// emptyWindows empties the consistency windows between ticks.
+func (l *lane) emptyWindows() {
 	l.win.Reset()
 	for j := range l.rms {
 		l.rms[j].reset()
 	}
+	l.emptied = true
 }
 
 // reset restarts the lane's filter at the absolute state x with covariance
 // p0 (estimator.Filter.Reset) and empties its windows.
 func (l *lane) reset(x []float64, p0 mat.Symmetric) {
 	l.f.Reset(x, p0)
-	l.win.Reset()
-	for j := range l.rms {
-		l.rms[j].reset()
-	}
+	l.emptyWindows()
 	l.held, l.why = 0, ""
 }
 
-// step runs the lane's filter on the engine's snapshot and judges the tick.
-func (l *lane) step(e *Engine) {
+// tick runs the lane on the engine's tick e.seq: a diverged lane holds,
+// then restarts; otherwise the filter steps on the tick's samples and the
+// tick is judged. With rebuild (a re-run changed past ticks) the windows are
+// rebuilt from the lane's history instead of being added to.
+func (l *lane) tick(e *Engine, rebuild bool) {
 	l.reinit = false
+	if l.emptied {
+		l.winFrom, l.emptied = e.seq, false
+	}
 	if l.held > 0 {
 		// Diverged: nothing to step until the hold is over, then start
 		// again from the plant's initial condition on this tick's samples.
@@ -94,8 +134,21 @@ func (l *lane) step(e *Engine) {
 		}
 		l.reset(e.x0, e.p0)
 		l.reinit = true
+		l.winFrom, l.emptied = e.seq, false
 	}
-	l.out = l.f.Step(e.u, e.y, e.present)
+	l.advance(e, e.seq, e.u, e.y, e.present, !rebuild)
+	if rebuild {
+		l.rebuildWindows(e)
+	}
+	l.judge(e)
+}
+
+// advance saves the filter as it is before tick seq, steps it on the tick's
+// samples, reads it out and records what the tick gives the windows (adding
+// it to them with windows).
+func (l *lane) advance(e *Engine, seq uint64, u, y []float64, present estimator.Pattern, windows bool) {
+	l.f.SaveTo(l.states[seq%uint64(len(l.states))])
+	l.out = l.f.Step(u, y, present)
 	l.f.StateTo(l.x)
 	l.hasStd = l.f.StdTo(l.std)
 	l.f.PredictedOutputTo(l.yhat)
@@ -103,6 +156,12 @@ func (l *lane) step(e *Engine) {
 	l.f.InnovationVarTo(l.s)
 	if l.out.HasNIS {
 		l.lastNIS = l.out.NIS
+	}
+	hi := seq % uint64(len(l.hist))
+	l.hist[hi] = contribution{seq: seq, nis: l.out.GateNIS, dof: l.out.GateDof, used: l.out.Used}
+	copy(l.histR[int(hi)*e.p:int(hi+1)*e.p], l.r)
+	if !windows {
+		return
 	}
 	// The window judges every present output, the gate's refusals
 	// included (clipped at the gate: estimator.Outcome.GateNIS), so that a
@@ -115,11 +174,15 @@ func (l *lane) step(e *Engine) {
 			l.rms[j].add(l.r[j])
 		}
 	}
+}
+
+// judge sets the windowed figures and the status of the tick just stepped.
+func (l *lane) judge(e *Engine) {
 	l.mean = l.win.Mean()
 	l.lo, l.hi = e.band(l.win)
 	l.outOfBand = l.win.Len() == e.window && !(l.mean >= l.lo && l.mean <= l.hi)
 	if why := e.divergence(l); why != "" {
-		l.held, l.why, l.status = 1, why, StatusDiverged
+		l.held, l.why, l.status, l.lateFused = 1, why, StatusDiverged, false
 		return
 	}
 	switch {
@@ -127,11 +190,12 @@ func (l *lane) step(e *Engine) {
 		l.status = StatusStaleInput
 	case l.outOfBand || l.out.Refusing:
 		l.status = StatusSuspect
-	case !l.out.Corrected:
+	case !l.out.Corrected && !l.lateFused:
 		l.status = StatusCoasting
 	default:
 		l.status = StatusTracking
 	}
+	l.lateFused = false
 }
 
 // divergence returns why lane l has diverged after its step, or "": a state

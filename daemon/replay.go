@@ -424,7 +424,10 @@ type SignalCount struct {
 	// Superseded counts those a newer sample replaced before a tick took
 	// them.
 	Superseded int
-	After      int
+	// Fused counts the samples that arrived after their tick had run and
+	// were fused at their own tick by a re-run (included in Used).
+	Fused int
+	After int
 }
 
 // RefusedTotal returns the number of samples refused for any reason.
@@ -440,6 +443,7 @@ func (c *SignalCount) RefusedTotal() int {
 type replayState struct {
 	engines  []*Engine
 	res      *ReplayResult
+	last     []int             // per signal, the line of the last sample offered
 	accepted []int             // per signal
 	first    [][numReasons]int // per signal and reason, the line of the first refused
 }
@@ -449,6 +453,7 @@ type replayState struct {
 func (st *replayState) offer(sig int, v float64, at, recv time.Time, line int) {
 	c := &st.res.Signals[sig]
 	c.Offered++
+	st.last[sig] = line
 	r, ok := st.engines[0].Offer(sig, v, at, recv)
 	for _, e := range st.engines[1:] {
 		e.Offer(sig, v, at, recv)
@@ -461,6 +466,20 @@ func (st *replayState) offer(sig int, v float64, at, recv time.Time, line int) {
 		st.first[sig][r] = line
 	}
 	c.Refused[r]++
+}
+
+// refusedLate counts n samples of signal sig that a tick refused as late
+// (beyond max_delay); the line is that of the signal's last sample offered,
+// the nearest a tick can tell.
+func (st *replayState) refusedLate(sig, n int) {
+	if n == 0 {
+		return
+	}
+	c := &st.res.Signals[sig]
+	if c.Refused[ReasonLate] == 0 {
+		st.first[sig][ReasonLate] = st.last[sig]
+	}
+	c.Refused[ReasonLate] += n
 }
 
 // Replay drives one engine per gain set over the source on virtual time,
@@ -514,7 +533,7 @@ func Replay(plant *config.Plant, sets []*estimator.Prepared, src *ReplaySource, 
 		res.Signals[i].Name = engines[0].SignalName(i)
 		res.Signals[i].Output = i >= m
 	}
-	st := replayState{engines: engines, res: res, accepted: make([]int, m+p), first: make([][numReasons]int, m+p)}
+	st := replayState{engines: engines, res: res, last: make([]int, m+p), accepted: make([]int, m+p), first: make([][numReasons]int, m+p)}
 
 	var truth [][]float64
 	var truthNow []float64
@@ -554,6 +573,9 @@ func Replay(plant *config.Plant, sets []*estimator.Prepared, src *ReplaySource, 
 				for j := range ests[0].Outputs {
 					o := &ests[0].Outputs[j]
 					c := &res.Signals[m+j]
+					c.Used += o.Late
+					c.Fused += o.Late
+					st.refusedLate(m+j, o.TooLate)
 					switch {
 					case o.Stale:
 						c.Stale++
@@ -593,8 +615,9 @@ func Replay(plant *config.Plant, sets []*estimator.Prepared, src *ReplaySource, 
 		c := &res.Signals[i]
 		if c.Output {
 			// Accepted samples a tick never took were replaced by a newer
-			// one (every sample offered is dated at or before the last tick).
-			c.Superseded = st.accepted[i] - c.Used - c.Stale
+			// one (every sample offered is dated at or before the last tick),
+			// or refused as late by a tick, beyond max_delay.
+			c.Superseded = st.accepted[i] - c.Used - c.Stale - c.Refused[ReasonLate]
 		}
 	}
 	res.Issues = append([]recording.Issue(nil), src.Issues...)
@@ -621,7 +644,7 @@ func refusalHint(r Reason) string {
 	case ReasonNaN:
 		return ": not a finite number"
 	case ReasonLate:
-		return ": dated at or before a tick that had already run when it was received"
+		return ": received after their tick had run, and that tick was beyond the signal's max_delay"
 	}
 	return ""
 }
@@ -650,6 +673,9 @@ func (c *SignalCount) String() string {
 	}
 	if c.Output {
 		fmt.Fprintf(&b, ", %d used, %d stale, %d superseded", c.Used, c.Stale, c.Superseded)
+		if c.Fused > 0 {
+			fmt.Fprintf(&b, " (%d of the used arrived after their tick and were fused at it)", c.Fused)
+		}
 	}
 	if c.After > 0 {
 		fmt.Fprintf(&b, ", %d received after the last tick", c.After)

@@ -341,7 +341,7 @@ func TestReplayBusIssues(t *testing.T) {
 	write(10.25, tank, "61.2")                                       // 33: …which takes this newer one instead
 	write(10.3, tank, "120")                                         // 34: out of range
 	write(10.4, hx, "warm")                                          // 35: does not decode
-	write(10.5, hx, `{"value": 54, "time": "2026-01-05T08:00:09Z"}`) // 36: dated before the tick at 10 s: late
+	write(10.5, hx, `{"value": 54, "time": "2026-01-05T08:00:05Z"}`) // 36: of the tick at 5 s, beyond max_delay (3 s): late
 	write(10.6, "pilot.hwl.fan.pv", "3")                             // 37: not wired
 	write(10.7, "pilot.hwl.fan.pv", "3")                             // 38: not wired
 	if err := w.Close(); err != nil {
@@ -365,7 +365,7 @@ func TestReplayBusIssues(t *testing.T) {
 	want := []string{
 		`line 34: column "tank_outlet": 1 sample refused by the engine (range): outside the signal's range in the plant file`,
 		`line 35: column "pilot.hwl.tt120.pv": sample refused (parse): "warm" is not a decimal number`,
-		`line 36: column "hx_outlet": 1 sample refused by the engine (late): dated at or before a tick that had already run when it was received`,
+		`line 36: column "hx_outlet": 1 sample refused by the engine (late): received after their tick had run, and that tick was beyond the signal's max_delay`,
 		`line 37: column "pilot.hwl.fan.pv": subject not wired in plant hotwater-loop: 2 messages skipped`,
 	}
 	if strings.Join(got, "\n") != strings.Join(want, "\n") {

@@ -142,19 +142,44 @@ func TestReplayTimeZone(t *testing.T) {
 
 // TestReplayIssuesPrinted replays the bus recording with its ticks on the
 // sample times (--start): the samples the scenario delayed arrive after
-// their tick and are refused as late, which stderr reports with the line
-// of the first of each signal.
+// their tick. Within the default max_delay they are fused at their own tick;
+// with max_delay 0s they are refused as late, which stderr reports with the
+// line of the first of each signal.
 func TestReplayIssuesPrinted(t *testing.T) {
 	data := recordingPath("hotwater-loop-rehearsal.jsonl")
 	stdout, stderr, code := cli(t, "replay", plantPath("hotwater-loop.yaml"), "--data", data, "--start", "2026-01-05T08:00:00Z")
+	if code != 0 || stderr != "" {
+		t.Fatalf("exit %d\n%s%s", code, stdout, stderr)
+	}
+	for _, w := range []string{"tank_outlet: 220 offered, 220 used, 0 stale, 0 superseded (30 of the used arrived after their tick and were fused at it)"} {
+		if !strings.Contains(stdout, w) {
+			t.Errorf("stdout lacks %q:\n%s", w, stdout)
+		}
+	}
+
+	dir := t.TempDir()
+	for _, name := range []string{"hotwater-loop.yaml", "hotwater-loop.gains.yaml"} {
+		b, err := os.ReadFile(plantPath(name))
+		if err != nil {
+			t.Fatal(err)
+		}
+		s := string(b)
+		if name == "hotwater-loop.yaml" {
+			s = strings.ReplaceAll(s, "    max_age: 3s\n    range: [0, 99]", "    max_age: 3s\n    max_delay: 0s\n    range: [0, 99]")
+		}
+		if err := os.WriteFile(filepath.Join(dir, name), []byte(s), 0o644); err != nil {
+			t.Fatal(err)
+		}
+	}
+	stdout, stderr, code = cli(t, "replay", filepath.Join(dir, "hotwater-loop.yaml"), "--data", data, "--start", "2026-01-05T08:00:00Z")
 	if code != 0 {
 		t.Fatalf("exit %d\n%s%s", code, stdout, stderr)
 	}
 	// Lines 714 and 716: the first delayed samples of each output, 105 s
 	// into the first cycle (7 messages a sample, fewer while a sensor
 	// drops out or is slow).
-	want := data + `:714: column "tank_outlet": 30 samples refused by the engine (late): dated at or before a tick that had already run when it was received` + "\n" +
-		data + `:716: column "hx_outlet": 30 samples refused by the engine (late): dated at or before a tick that had already run when it was received` + "\n"
+	want := data + `:714: column "tank_outlet": 30 samples refused by the engine (late): received after their tick had run, and that tick was beyond the signal's max_delay` + "\n" +
+		data + `:716: column "hx_outlet": 30 samples refused by the engine (late): received after their tick had run, and that tick was beyond the signal's max_delay` + "\n"
 	if stderr != want {
 		t.Errorf("stderr:\n%s\nwant:\n%s", stderr, want)
 	}
