@@ -1,12 +1,16 @@
 package daemon
 
 import (
+	"bytes"
+	"fmt"
 	"math"
+	"sort"
 	"syscall"
 	"testing"
 	"time"
 
 	"surmise/config"
+	"surmise/daemon/recording"
 	"surmise/estimator"
 )
 
@@ -270,4 +274,172 @@ func lateCPU(t testing.TB) time.Duration {
 		t.Fatal(err)
 	}
 	return time.Duration(ru.Utime.Nano() + ru.Stime.Nano())
+}
+
+// TestReplayEqualsEngineWithLateArrivals drives one engine as the daemon
+// does — each sample offered when it arrives, ticks at their due times —
+// with every third tank sample arriving 1.3 periods after its own time and
+// every fifth exchanger sample 2.6 periods after it, and writes the same
+// arrivals to a bus recording; the replay of that recording must give the
+// same estimates tick by tick, re-runs included.
+func TestReplayEqualsEngineWithLateArrivals(t *testing.T) {
+	pl, gf := lateDemo(t, 0) // max_delay: 3 s
+	const ticks = 120
+	feed := newLateFeed(t, pl, 8, ticks)
+	type arrival struct {
+		recv, at time.Time
+		signal   int
+		value    float64
+	}
+	var arrivals []arrival
+	for k := 0; k < ticks; k++ {
+		at := engAt(float64(k)).Add(-300 * time.Millisecond)
+		arrivals = append(arrivals, arrival{at.Add(time.Millisecond), at, 0, feed.u[k][0]})
+		d := []time.Duration{time.Millisecond, time.Millisecond}
+		if k%3 == 0 {
+			d[0] = 1300 * time.Millisecond
+		}
+		if k%5 == 0 {
+			d[1] = 2600 * time.Millisecond
+		}
+		for j, v := range feed.y[k] {
+			arrivals = append(arrivals, arrival{at.Add(d[j]), at, 1 + j, v})
+		}
+	}
+	sort.SliceStable(arrivals, func(a, b int) bool { return arrivals[a].recv.Before(arrivals[b].recv) })
+
+	prep := engPrepare(t, pl, gf, "place-prediction")
+	e := NewEngine(pl, prep, EngineOptions{})
+	est := e.NewEstimate()
+	var live []Estimate
+	next := 0
+	for k := 0; k < ticks; k++ {
+		tk := engAt(float64(k))
+		for ; next < len(arrivals) && !arrivals[next].recv.After(tk); next++ {
+			a := arrivals[next]
+			e.Offer(a.signal, a.value, a.at, a.recv)
+		}
+		e.Tick(tk, est)
+		cp := *est
+		cp.States = append([]StateEstimate(nil), est.States...)
+		live = append(live, cp)
+	}
+
+	var b bytes.Buffer
+	w := recording.NewWriter(&b)
+	subjects := []string{pl.Inputs[0].Subject, pl.Outputs[0].Subject, pl.Outputs[1].Subject}
+	for _, a := range arrivals {
+		payload := fmt.Sprintf(`{"value": %v, "time": %q}`, a.value, a.at.Format(time.RFC3339Nano))
+		if err := w.Write(a.recv, subjects[a.signal], []byte(payload)); err != nil {
+			t.Fatal(err)
+		}
+	}
+	if err := w.Close(); err != nil {
+		t.Fatal(err)
+	}
+	br, err := recording.ReadJSONL(&b, "late.jsonl")
+	if err != nil {
+		t.Fatal(err)
+	}
+	k := 0
+	fused := 0
+	_, err = Replay(pl, []*estimator.Prepared{prep}, NewBusSource(pl, br), ReplayOptions{
+		Start: engAt(0), End: engAt(ticks - 1),
+		Tick: func(_, _ int, r *Estimate) {
+			if k >= len(live) {
+				t.Fatalf("replay tick %d beyond the %d live ones", k, len(live))
+			}
+			l := &live[k]
+			for _, o := range r.Outputs {
+				fused += o.Late
+			}
+			if !r.Time.Equal(l.Time) || r.Status != l.Status {
+				t.Fatalf("tick %d: replay %v %v, live %v %v", k, r.Time, r.Status, l.Time, l.Status)
+			}
+			for i := range l.States {
+				if r.States[i].Value != l.States[i].Value || r.States[i].Std != l.States[i].Std {
+					t.Fatalf("tick %d: state %d replayed %v ± %v, live %v ± %v", k, i,
+						r.States[i].Value, r.States[i].Std, l.States[i].Value, l.States[i].Std)
+				}
+			}
+			k++
+		},
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if k != ticks || fused < ticks/3 {
+		t.Errorf("%d ticks replayed, %d late samples fused; want %d and at least %d", k, fused, ticks, ticks/3)
+	}
+}
+
+// TestLabAnalysisFusedAtItsTime runs the invented brine tank of
+// testdata/plants: an inline strength every minute, and a laboratory
+// titration of a sample drawn at 08:00 whose result is published at 08:40
+// with its own time (the plant file gives it max_delay: 1h). From 08:40 on
+// the estimate is exactly the one of an engine that had the result at 08:00,
+// and more certain than that of an engine that never had it.
+func TestLabAnalysisFusedAtItsTime(t *testing.T) {
+	pl, err := config.LoadPlant("../testdata/plants/brine-tank.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	gf, err := config.LoadGains(pl.GainsPath, pl)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if got := pl.Outputs[1].MaxDelay; got != time.Hour {
+		t.Fatalf("lab_strength max_delay %v, want 1h", got)
+	}
+	md := pl.Model
+	sim := estimator.NewPlant(md, 21, nil)
+	t0 := time.Date(2026, 1, 5, 6, 0, 0, 0, time.UTC)
+	tickAt := func(k int) time.Time { return t0.Add(time.Duration(k) * time.Minute) }
+	const drawn, published, ticks = 120, 160, 240 // 08:00, 08:40, 10:00
+	engines := make([]*Engine, 3)                 // on time, late, never
+	ests := make([]*Estimate, 3)
+	for i := range engines {
+		engines[i] = NewEngine(pl, engPrepare(t, pl, gf, "kalman-current"), EngineOptions{})
+		ests[i] = engines[i].NewEstimate()
+	}
+	if h := engines[0].HorizonTicks(); h != 61 {
+		t.Errorf("horizon %d ticks, want 61 (an hour of 1-minute ticks, and one)", h)
+	}
+	u, y := []float64{0.5}, make([]float64, 2)
+	var lab float64
+	for k := 0; k < ticks; k++ {
+		tk := tickAt(k)
+		u[0] = 0.5 + 0.1*math.Sin(float64(k)/15)
+		sim.Step(u)
+		sim.OutputTo(y)
+		for i, e := range engines {
+			e.Offer(0, u[0], tk, tk)
+			e.Offer(1, y[0], tk, tk)
+			if k == drawn {
+				lab = y[1]
+				if i == 0 {
+					e.Offer(2, lab, tk, tk)
+				}
+			}
+			if k == published && i == 1 {
+				if r, ok := e.Offer(2, lab, tickAt(drawn), tk.Add(-time.Second)); !ok {
+					t.Fatalf("the laboratory result was refused: %v", r)
+				}
+			}
+			e.Tick(tk, ests[i])
+		}
+		if k < published {
+			continue
+		}
+		on, late, never := ests[0], ests[1], ests[2]
+		for i := range on.States {
+			if on.States[i].Value != late.States[i].Value || on.States[i].Std != late.States[i].Std {
+				t.Fatalf("%v: %s = %v ± %v with the result on time, %v ± %v with it 40 minutes late",
+					tk.Format("15:04"), on.States[i].Name, on.States[i].Value, on.States[i].Std, late.States[i].Value, late.States[i].Std)
+			}
+		}
+		if k == published && !(late.States[1].Std < never.States[1].Std) {
+			t.Errorf("08:40: feed_strength ± %v with the result, ± %v without it: the analysis taught nothing", late.States[1].Std, never.States[1].Std)
+		}
+	}
 }
