@@ -253,6 +253,13 @@ func writeReplaySummary(w io.Writer, plant *config.Plant, src *daemon.ReplaySour
 					fmt.Fprintf(w, "  error       %-14s RMS %s %s against the true state\n", name, fnum(math.Sqrt(rms/float64(cnt))), in.StateUnits[i])
 				}
 			}
+			if cov := sums[ri].Coverage; cov != nil {
+				for i, name := range in.StateNames {
+					if !math.IsNaN(cov[i]) {
+						fmt.Fprintf(w, "  within 2σ   %-14s %.1f %% of the ticks (about 95 %% for a filter whose σ is honest)\n", name, 100*cov[i])
+					}
+				}
+			}
 		}
 	}
 }

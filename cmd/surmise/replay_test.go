@@ -189,3 +189,24 @@ func TestReplayIssuesPrinted(t *testing.T) {
 		}
 	}
 }
+
+// TestReplayDrawnStartCoverage simulates the demo plant from a start drawn
+// from its initial covariance and replays it: neither gain set coasts or
+// rejects samples as outliers while it acquires, and the replay prints, per
+// state, how often the truth lay within 2σ of the estimate.
+func TestReplayDrawnStartCoverage(t *testing.T) {
+	data := filepath.Join(t.TempDir(), "d.jsonl")
+	if _, stderr, code := cli(t, "simulate", plantPath("hotwater-loop.yaml"), "--initial", "draw", "--seed", "3",
+		"--scenario", "steady", "--for", "4m", "--out", data); code != 0 {
+		t.Fatalf("simulate: exit %d: %s", code, stderr)
+	}
+	stdout, stderr, code := cli(t, "replay", plantPath("hotwater-loop.yaml"), "--data", data)
+	if code != 0 {
+		t.Fatalf("replay: exit %d\n%s%s", code, stdout, stderr)
+	}
+	for _, w := range []string{"coasting 0.0 %", "outliers rejected 0", "within 2σ   element_temp", "within 2σ   heat_loss"} {
+		if strings.Count(stdout, w) != 2 {
+			t.Errorf("stdout has %q %d times, want once per gain set:\n%s", w, strings.Count(stdout, w), stdout)
+		}
+	}
+}

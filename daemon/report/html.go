@@ -217,6 +217,19 @@ func tableSections(in *Input, sums []Summary) []tableSection {
 		}),
 	)
 	out := []tableSection{ticks, nis}
+	if len(sums) > 0 && sums[0].Coverage != nil {
+		// The recording holds the true states: is the published σ honest?
+		sec := tableSection{Title: "Error against the true state within 2σ"}
+		for i, name := range in.StateNames {
+			sec.Rows = append(sec.Rows, row(name, "≈ 95 %", func(s *Summary) tableCell {
+				if s.Coverage == nil || math.IsNaN(s.Coverage[i]) {
+					return tableCell{Text: "—"}
+				}
+				return tableCell{Text: pct(s.Coverage[i]), Warn: s.Coverage[i] < 0.9}
+			}))
+		}
+		out = append(out, sec)
+	}
 	for j, name := range in.OutputNames {
 		unit := unitOf(in.OutputUnits, j)
 		sec := tableSection{Title: "Innovation of " + withUnit(name, unit)}

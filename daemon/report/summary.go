@@ -44,6 +44,15 @@ type Summary struct {
 	WindowsInBand float64
 
 	Outputs []OutputSummary
+
+	// Coverage[i] is, for a recording that holds the true states (Input.
+	// Truth), the fraction of ticks on which state i's estimate lay within
+	// two of its published standard deviations of the truth, over the ticks
+	// with an estimate, a standard deviation and a true value; NaN when
+	// there are none. A consistent filter's error is Gaussian with the σ it
+	// publishes, so about 95 % (95.4 %, the standard normal table). nil
+	// without the truth or the standard deviations.
+	Coverage []float64
 }
 
 // OutputSummary is the statistics of one output's innovations.
@@ -154,6 +163,7 @@ func summariseRun(in *Input, r *Run, bands *nisBands) Summary {
 	if s.Windows > 0 {
 		s.WindowsInBand = float64(inside) / float64(s.Windows)
 	}
+	s.Coverage = coverage(in, t)
 	s.Outputs = make([]OutputSummary, len(in.OutputNames))
 	for j, name := range in.OutputNames {
 		o := OutputSummary{Name: name}
@@ -225,4 +235,30 @@ func Autocorrelation(dst, r []float64) []float64 {
 		dst[j] = s / c0
 	}
 	return dst
+}
+
+// coverage returns Summary.Coverage of a run's ticks.
+func coverage(in *Input, t *Ticks) []float64 {
+	if in.Truth == nil || t.StateStd == nil {
+		return nil
+	}
+	cov := make([]float64, len(in.Truth))
+	for i, truth := range in.Truth {
+		inside, n := 0, 0
+		for k, x := range truth {
+			v, sd := t.States[i][k], t.StateStd[i][k]
+			if math.IsNaN(x) || math.IsNaN(v) || math.IsNaN(sd) {
+				continue
+			}
+			n++
+			if math.Abs(v-x) <= 2*sd {
+				inside++
+			}
+		}
+		cov[i] = math.NaN()
+		if n > 0 {
+			cov[i] = float64(inside) / float64(n)
+		}
+	}
+	return cov
 }

@@ -314,3 +314,30 @@ func TestTicksAppendAllocatesNothing(t *testing.T) {
 	}()
 	tk.Append(&TickRow{States: make([]float64, 2), Innovations: make([]float64, 2)})
 }
+
+// TestCoverage checks the fraction of ticks whose error lies within 2σ,
+// counted by hand: errors of 0, 1.9, 2, 2.1 and 3 standard deviations (the
+// boundary counts as inside), a tick without a standard deviation and one
+// without a true value left out.
+func TestCoverage(t *testing.T) {
+	in := oneRun(7, 1)
+	tk := &in.Runs[0].Ticks
+	sd := 0.5
+	errs := []float64{0, 1.9, 2, 2.1, 3, 0, 0}
+	in.Truth = [][]float64{make([]float64, 7)}
+	for k, e := range errs {
+		in.Truth[0][k] = 10
+		tk.States[0][k] = 10 + e*sd
+		tk.StateStd[0][k] = sd
+	}
+	tk.StateStd[0][5] = math.NaN()
+	in.Truth[0][6] = math.NaN()
+	s := Summarise(in)[0]
+	if len(s.Coverage) != 1 || s.Coverage[0] != 3.0/5 {
+		t.Errorf("coverage %v, want [0.6] (3 of 5 ticks)", s.Coverage)
+	}
+	in.Truth = nil
+	if s := Summarise(in)[0]; s.Coverage != nil {
+		t.Errorf("coverage %v without the truth, want nil", s.Coverage)
+	}
+}
