@@ -354,6 +354,11 @@ func (d *Daemon) Run(ctx context.Context) (err error) {
 		d.log.Warn("sd_notify READY=1 failed", "error", err)
 	}
 	d.log.Info("daemon started", "bus", ep.BusURL, "embedded", ep.Embedded, "http", ep.HTTPAddr.String(), "estimators", len(d.estimators))
+	for _, e := range d.estimators {
+		// The ring of past ticks kept to fuse late samples at their own time.
+		d.log.Info("estimator delay horizon", "estimator", e.name, "past_ticks_kept", e.engine.HorizonTicks(),
+			"covers", time.Duration(e.engine.HorizonTicks())*e.period)
+	}
 	if d.opts.Started != nil {
 		d.opts.Started(ep)
 	}
