@@ -17,7 +17,7 @@ import (
 	"surmise/estimator"
 )
 
-// The control service (DESIGN.md §5): one NATS micro service named
+// The control service: one NATS micro service named
 // ControlService per daemon, with one group of endpoints per estimator,
 //
 //	surmise.control.<estimator>.status    no body            → StatusReply

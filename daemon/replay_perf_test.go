@@ -168,7 +168,7 @@ func TestReplayDayAt10Hz(t *testing.T) {
 	}
 	t.Logf("%d MB of CSV, %d samples: reading %v CPU (%v wall); reading and replaying %v CPU (%v wall)",
 		len(data)>>20, src.Len(), cpuRead.Round(time.Millisecond), wallRead.Round(time.Millisecond), cpu.Round(time.Millisecond), wall.Round(time.Millisecond))
-	// The goal of the brief: 864k ticks in ≤ 5 s.
+	// The goal (DEVELOPERS.md, "Measuring the daemon"): 864k ticks in ≤ 5 s.
 	if cpu > 5*time.Second {
 		t.Errorf("reading and replaying took %v of CPU, want at most 5 s", cpu)
 	}

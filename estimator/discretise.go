@@ -43,7 +43,7 @@ import (
 //
 // The matrix exponentials are gonum's mat.Dense.Exp (scaling and squaring with
 // Padé approximants, Higham's algorithm); the tests check it against the stiff
-// example and the scipy values listed in REFERENCES.md.
+// example and scipy's values (testdata/reference/SOURCES.md).
 //
 // Discretise panics if A is not square, if B or Qc do not have as many rows as
 // A, or if ts is not a finite positive number: these are programmer mistakes,

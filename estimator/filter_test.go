@@ -9,8 +9,8 @@ import (
 )
 
 // The references in this file are computed independently of filter.go:
-// with gonum's Dense products and inverses, following the textbook
-// equations written beside each one.
+// with gonum's Dense products and inverses, following the Kalman filter's
+// equations written beside each one (SOURCES.md: kalman-filter).
 
 // refRiccati iterates the Kalman filter's covariance recursion with gonum
 // (S = C·P⁻·Cᵀ + R, K = P⁻·Cᵀ·S⁻¹, P⁺ = (I − K·C)·P⁻, P⁻ ← A·P⁺·Aᵀ + Q)
@@ -112,7 +112,7 @@ func threeModel() *Model {
 
 func TestKalmanScalarRandomWalk(t *testing.T) {
 	// A = C = 1, q = r = 1: the steady-state gain is K = 0.6180339887 and
-	// P⁻ = 1.6180339887 (closed form, REFERENCES.md [recomputed]); the a
+	// P⁻ = 1.6180339887 (SOURCES.md: random-walk-riccati); the a
 	// posteriori P = (1 − K)·P⁻ = K·r = 0.6180339887 and S = P⁻ + r.
 	md := &Model{
 		A: mat.NewDense(1, 1, []float64{1}), B: mat.NewDense(1, 1, []float64{0}),
@@ -203,8 +203,8 @@ func maxAbsDiffFlat(a, b mat.Matrix) float64 {
 
 func TestPredictionFormRecursion(t *testing.T) {
 	// The prediction-form observer x̂(k+1|k) = A·x̂(k|k−1) + B·u(k) +
-	// L·(y(k) − C·x̂(k|k−1) − D·u(k)) (gains.go; any sampled-data text),
-	// with L_p = [1, 2.5] placing both poles at 0.5 (REFERENCES.md), over 10
+	// L·(y(k) − C·x̂(k|k−1) − D·u(k)) (gains.go), with L_p = [1, 2.5]
+	// placing both poles at 0.5 (SOURCES.md: double-integrator-placement), over 10
 	// ticks against the same recursion written with gonum.
 	md := diModel()
 	l := mat.NewDense(2, 1, []float64{1, 2.5})
@@ -253,8 +253,8 @@ func TestPredictionFormRecursion(t *testing.T) {
 
 func TestCurrentAndPredictionForms(t *testing.T) {
 	// With L_p = A·L_c the two forms are the same observer: x̂_pred(k+1|k) =
-	// A·x̂_cur(k|k) + B·u(k) (common practice; REFERENCES.md). L_c = [0.75, 2.5]
-	// places both current-form poles at 0.5 (REFERENCES.md).
+	// A·x̂_cur(k|k) + B·u(k) (SOURCES.md: kalman-forms). L_c = [0.75, 2.5]
+	// places both current-form poles at 0.5 (SOURCES.md: double-integrator-placement).
 	md := diModel()
 	lc := mat.NewDense(2, 1, []float64{0.75, 2.5})
 	var lp mat.Dense
@@ -292,7 +292,7 @@ func TestJosephCovarianceBadlyScaled(t *testing.T) {
 	// A well-behaved 3-state model seen through the state scaling
 	// T = diag(1e-3, 1, 1e3): A' = T·A·T⁻¹, C' = C·T⁻¹, Q' = T·Q·Tᵀ, and
 	// outputs of very different sizes. Over 10,000 ticks, with outputs
-	// dropping in and out, the Joseph form (REFERENCES.md, common practice)
+	// dropping in and out, the Joseph form (SOURCES.md: kalman-forms)
 	// keeps P exactly symmetric and positive semidefinite (its correlation
 	// matrix has no negative eigenvalue beyond rounding); after a final run
 	// with all outputs it matches the Riccati recursion computed with gonum.
@@ -362,10 +362,11 @@ func TestJosephCovarianceBadlyScaled(t *testing.T) {
 
 func TestMissingOutputs(t *testing.T) {
 	// Fixed gains are valid only for the outputs they were designed with
-	// (DESIGN.md §3): a missing output means predict only, unless the set has
+	// (Filter.Step): a missing output means predict only, unless the set has
 	// a gain for the outputs present. The Kalman form corrects with any
 	// subset; its gain for output 0 alone is K = P⁻·c₀ᵀ/(c₀·P⁻·c₀ᵀ + r₀₀)
-	// (the textbook gain for the rows present), computed here with gonum.
+	// (the Kalman gain for the rows present, SOURCES.md: kalman-filter),
+	// computed here with gonum.
 	md := threeModel()
 	_, post, s, kc := refRiccati(md.A, md.C, md.Q, md.R, 300)
 	full := PatternGain{Outputs: 3, L: kc, S: symOf(s), P: symOf(post)}
@@ -452,7 +453,7 @@ func TestMissingOutputs(t *testing.T) {
 func TestOutlierGate(t *testing.T) {
 	// A consistent filter's NIS over all p outputs is χ²(p), so the gate
 	// at probability g rejects a tick's worst output with probability 1 − g
-	// (REFERENCES.md, chi-square); a 20σ spike is rejected.
+	// (SOURCES.md: chi2-table); a 20σ spike is rejected.
 	md := threeModel()
 	prior, post, s, kc := refRiccati(md.A, md.C, md.Q, md.R, 300)
 	sets := []*GainSet{
@@ -519,7 +520,7 @@ func TestOutlierGate(t *testing.T) {
 
 func TestNISConsistency(t *testing.T) {
 	// A consistent filter's mean NIS over N ticks lies inside the 95% band
-	// of χ²(N·p)/N (Bar-Shalom, Li, Kirubarajan 2001); the same filter told
+	// of χ²(N·p)/N (SOURCES.md: nis-band); the same filter told
 	// that R is ten times smaller than it is falls outside. The fixed gains
 	// are the steady-state Kalman gains, from DesignKalman and from the
 	// converged Riccati recursion (gonum, above).
@@ -585,7 +586,7 @@ func TestNISConsistency(t *testing.T) {
 func TestNISConsistencyWithDropouts(t *testing.T) {
 	// The time-varying Kalman filter stays consistent when outputs come and
 	// go: the sum of its NIS values over the ticks with a NIS is χ² with the
-	// summed dof (Bar-Shalom, Li, Kirubarajan 2001), which NISWindow's band
+	// summed dof (SOURCES.md: nis-band), which NISWindow's band
 	// checks. Told R ten times too small, it is flagged.
 	md := threeModel()
 	small := mat.NewSymDense(2, nil)

@@ -192,7 +192,8 @@ func TestAutocorrelationClosedForm(t *testing.T) {
 
 // TestSummariseSeededDraws checks the statistics against their sampling
 // distributions: draws of a consistent filter land where chi-square and
-// Mehra's bound say, an overconfident one does not.
+// Mehra's bound say (SOURCES.md: chi2-table, mehra-whiteness), an
+// overconfident one does not.
 func TestSummariseSeededDraws(t *testing.T) {
 	const n = 40_000
 	src := rand.New(rand.NewPCG(7, 11))
