@@ -134,7 +134,7 @@ func shadowRig(t testing.TB, candidate string, dwell time.Duration) *cmRig {
 // poles 0.995 and 0.99: time constants of 200 and 100 ticks) against the
 // Kalman filter in shadow on the same samples for 600 ticks, and compares
 // their windowed consistency over the last 200: the Kalman filter's mean
-// NIS lies in the 95 % chi-square band of a 200-tick window (Bar-Shalom, Li
+// NIS lies in the 95 % chi-square band of a 200-tick window (SOURCES.md: nis-band; Bar-Shalom, Li
 // and Kirubarajan: 200·mean is χ²(200) for a consistent filter), the slow
 // set's lies far above it (it has not converged from the initial error), and
 // the Kalman filter's innovation RMS is less than half the slow set's. The

@@ -20,7 +20,7 @@ import (
 //	exp([[A, B], [0, 0]]·ts) = [[Ad, Bd], [0, I]],
 //
 // so Bd = ∫₀^ts e^{A·s} ds · B is right also when A is singular (an
-// integrator), where the textbook A⁻¹(Ad − I)B is not defined.
+// integrator), where the closed form A⁻¹(Ad − I)B is not defined.
 //
 // Qd = ∫₀^ts e^{A·s}·Qc·e^{Aᵀ·s} ds is computed by Van Loan's method
 // (C. F. Van Loan, "Computing integrals involving the matrix exponential",

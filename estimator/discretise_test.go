@@ -196,7 +196,7 @@ func discretiseDense(rows [][]float64) *mat.Dense {
 }
 
 // TestDiscretiseFixture compares random 5-state, 2-input systems with values
-// recomputed by scipy (testdata/reference/discretise.py: Ad, Bd from
+// recomputed by scipy (SOURCES.md: discretise-random; discretise.py: Ad, Bd from
 // scipy.linalg.expm of the augmented matrix, checked against
 // scipy.signal.cont2discrete; Qd from adaptive quadrature of the defining
 // integral, checked against scipy's Van Loan exponential).

@@ -177,7 +177,7 @@ func TestPlaceKNVExample1(t *testing.T) {
 		name  string
 		poles []complex128
 	}{
-		// Poles of example 1 (Kautsky, Nichols, Van Dooren 1985).
+		// Poles of example 1 (SOURCES.md: knv).
 		{"published", []complex128{-0.2, -0.5, -5.0566, -8.6659}},
 		// Repeated poles, each as often as B has rank (scipy's
 		// test_ltisys.py uses (2, 2, 3, 3) on the same system).
@@ -225,7 +225,7 @@ func TestPlaceKNVExample1(t *testing.T) {
 }
 
 func TestPlaceComplexCarModel(t *testing.T) {
-	// Linearised car model with complex poles, from scipy's
+	// Linearised car model with complex poles (SOURCES.md: knv), from scipy's
 	// signal/tests/test_ltisys.py (test_complex).
 	a := mat.NewDense(4, 4, []float64{0, 7, 0, 0, 0, 0, 0, 7. / 3, 0, 0, 0, 0, 0, 0, 0, 0})
 	b := mat.NewDense(4, 2, []float64{0, 0, 0, 0, 1, 0, 0, 1})

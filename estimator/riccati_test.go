@@ -156,7 +156,8 @@ type riccatiFixture struct {
 
 func loadRiccatiFixture(t *testing.T) *riccatiFixture {
 	t.Helper()
-	// Written by testdata/reference/riccati.py (scipy 1.10).
+	// Written by testdata/reference/riccati.py (scipy 1.10; SOURCES.md: darex,
+	// lyapunov-kalman).
 	raw, err := os.ReadFile(filepath.Join("..", "testdata", "reference", "riccati.json"))
 	if err != nil {
 		t.Fatal(err)
@@ -247,7 +248,8 @@ func TestSolveDiscreteLyapunov(t *testing.T) {
 	if want := 2 / 0.19; math.Abs(x.At(0, 0)-want) > 1e-13*want {
 		t.Errorf("scalar: x = %.17g, want %.17g", x.At(0, 0), want)
 	}
-	// Fixtures from scipy.linalg.solve_discrete_lyapunov.
+	// Fixtures from scipy.linalg.solve_discrete_lyapunov (SOURCES.md:
+	// lyapunov-kalman).
 	f := loadRiccatiFixture(t)
 	for _, c := range f.Lyapunov {
 		t.Run(c.Name, func(t *testing.T) {
@@ -307,7 +309,7 @@ func TestSteadyStateKalmanFixture(t *testing.T) {
 			if err != nil {
 				t.Fatal(err)
 			}
-			// Values from scipy (testdata/reference/riccati.py).
+			// Values from scipy (SOURCES.md: lyapunov-kalman).
 			for _, m := range []struct {
 				name      string
 				got, want mat.Matrix

@@ -96,7 +96,7 @@ func TestCheckFirstOrderLag(t *testing.T) {
 
 // TestCheckTimeConstantsDemo checks the demo plant's reported time constants
 // against the continuous-time eigenvalues of its A: zero-order hold maps
-// λ_c to e^{λ_c·Ts}, so −Ts/ln|λ| = −1/Re λ_c (common practice), and the zero
+// λ_c to e^{λ_c·Ts}, so −Ts/ln|λ| = −1/Re λ_c (SOURCES.md: zoh-eigenvalues), and the zero
 // eigenvalue of the heat-loss bias state is an integrator.
 func TestCheckTimeConstantsDemo(t *testing.T) {
 	plant, err := config.LoadPlant(plantPath("hotwater-loop.yaml"))

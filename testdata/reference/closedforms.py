@@ -109,6 +109,10 @@ close("A − L_p·C poles", np.sort(np.linalg.eigvals(a - lp @ c).real), [p1, p2
 close("A − L_c·C·A poles", np.sort(np.linalg.eigvals(a - lc @ c @ a).real), [p1, p2], 1e-7)
 close("characteristic polynomial of A − L_p·C", np.poly(a - lp @ c), np.poly([p1, p2]), 1e-14)
 close("characteristic polynomial of A − L_c·C·A", np.poly(a - lc @ c @ a), np.poly([p1, p2]), 1e-14)
+# example-current-observer: the error of estimator's ExampleNewFilter,
+# e(k) = (A − L_c·C·A)·e(k−1) from e(0) = [0.25, −2], at k = 10.
+e = np.linalg.matrix_power(a - lc @ c @ a, 10) @ np.array([0.25, -2.0])
+out["example-current-observer"] = {"e0": [0.25, -2.0], "e10": e.tolist()}
 out["double-integrator-placement"] = {"ts": ts, "poles": [p1, p2], "lp": lp.ravel().tolist(), "lc": lc.ravel().tolist()}
 
 # chi2-table: quantiles printed in the NIST/SEMATECH table, recomputed.
