@@ -17,7 +17,8 @@ import (
 )
 
 // TestCheckGolden compares check's report, text and JSON, with the golden
-// files, and its exit status with the verdict.
+// files (regression snapshots: see golden), and its exit status with the
+// verdict. TestCheckAgainstScipy checks the numbers in them.
 func TestCheckGolden(t *testing.T) {
 	for _, tc := range []struct {
 		golden   string
