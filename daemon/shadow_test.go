@@ -174,6 +174,9 @@ func TestShadowCandidateIsMeasurablyBetter(t *testing.T) {
 	if !(sm >= lo && sm <= hi) {
 		t.Errorf("the slow set's windowed NIS mean %v is outside [%v, %v]: its covariance is not its own", sm, lo, hi)
 	}
+	// The factor is empirical: with this seed the candidate's innovation
+	// RMS is 0.12 m against the slow set's 2.59 m (a twentieth); half is a
+	// wide margin for "measurably better".
 	if !(krms < 0.5*srms) {
 		t.Errorf("innovation RMS: candidate %v, active %v; want the candidate's below half", krms, srms)
 	}
