@@ -73,7 +73,7 @@ func runCtl(ctx context.Context, e *env, args []string) error {
 	flags.StringVar(&f.nats, "nats", "nats://127.0.0.1:4222", "NATS server `URL`s, comma-separated (the default is where surmise run's embedded server listens)")
 	flags.StringVar(&f.creds, "creds", "", "NATS user credentials `FILE` (JWT and seed)")
 	flags.StringVar(&f.tlsCA, "tls-ca", "", "PEM `FILE` of the CAs that sign the NATS server's certificate")
-	flags.DurationVar(&f.timeout, "timeout", 5*time.Second, "how long to wait for the connection and for the reply")
+	flags.DurationVar(&f.timeout, "timeout", 5*time.Second, "how long to wait for the connection and for the reply, a `DURATION`")
 	flags.BoolVar(&f.json, "json", false, "print the daemon's JSON reply as it came")
 	flags.StringVar(&f.set, "set", "", "load: run the set `NAME` instead of the file's active set")
 	flags.StringVar(&f.candidate, "candidate", "", "load: run the set `NAME` in shadow instead of the file's candidate")

@@ -47,16 +47,16 @@ type designFlags struct {
 func runDesign(_ context.Context, e *env, args []string) error {
 	flags := newFlags(e, "design", designSynopsis)
 	var f designFlags
-	flags.StringVar(&f.method, "method", "", "`place` or kalman (default kalman, or place when --poles or --faster is given)")
-	flags.StringVar(&f.form, "form", "current", "observer form: `prediction` (x̂(k+1|k)) or current (x̂(k|k))")
-	flags.StringVar(&f.poles, "poles", "", "placement: the error-dynamics `eigenvalues`, comma-separated, real or complex pairs: \"0.8,0.8,0.7+0.1i,0.7-0.1i\" (0.7±0.1i stands for the pair)")
+	flags.StringVar(&f.method, "method", "", "`METHOD`: kalman or place (default kalman, or place when --poles or --faster is given)")
+	flags.StringVar(&f.form, "form", "current", "observer `FORM`: prediction (x̂(k+1|k)) or current (x̂(k|k))")
+	flags.StringVar(&f.poles, "poles", "", "placement: the error-dynamics eigenvalues (`LIST`), comma-separated, real or complex pairs: \"0.8,0.8,0.7+0.1i,0.7-0.1i\" (0.7±0.1i stands for the pair)")
 	flags.Float64Var(&f.faster, "faster", 0, "placement by rule of thumb: observer poles `F` times faster than the plant's own modes")
 	flags.BoolVar(&f.patterns, "patterns", false, "also design a gain for every subset of the outputs that can be estimated from (so a missing sensor still corrects)")
-	flags.StringVar(&f.name, "name", "", "the gain set's `name` (default <method>-<form>)")
+	flags.StringVar(&f.name, "name", "", "the gain set's `NAME` (default: METHOD-FORM, such as kalman-current)")
 	flags.BoolVar(&f.add, "add", false, "add the set to the existing gains file, replacing a set of the same name, instead of rewriting the file")
 	flags.BoolVar(&f.candidate, "candidate", false, "mark the set as the candidate (run in shadow) instead of the active set; needs --add")
 	flags.StringVar(&f.out, "o", "", "write the gains file to `FILE` instead of the plant's gains path; - for standard output")
-	flags.StringVar(&f.when, "time", "", "the design `time` recorded in the provenance, RFC 3339 (default $SOURCE_DATE_EPOCH, else now)")
+	flags.StringVar(&f.when, "time", "", "the design `TIME` recorded in the provenance, RFC 3339 (default: $SOURCE_DATE_EPOCH, else now)")
 	pos, err := parseArgs(flags, args)
 	if err != nil {
 		return err

@@ -52,15 +52,15 @@ func runSimulate(ctx context.Context, e *env, args []string) error {
 	fs := newFlags(e, "simulate", simulateSynopsis)
 	var f simulateFlags
 	fs.StringVar(&f.nats, "nats", nats.DefaultURL, "NATS server `URL` to publish to")
-	fs.Uint64Var(&f.seed, "seed", 1, "`seed` of the noise, the initial state, the PRBS phase and the jitter")
-	fs.Float64Var(&f.speed, "speed", 1, "time `scale`: 1 is real time, 10 ten times faster")
+	fs.Uint64Var(&f.seed, "seed", 1, "`SEED` of the noise, the initial state, the PRBS phase and the jitter")
+	fs.Float64Var(&f.speed, "speed", 1, "time `SCALE`: 1 is real time, 10 ten times faster")
 	fs.StringVar(&f.scenario, "scenario", "rehearsal", "scenario `FILE`, or a built-in: "+strings.Join(simplant.BuiltinNames, ", "))
-	fs.DurationVar(&f.length, "for", 0, "plant `time` to run (default: until interrupted; with --out or --csv, the scenario's length)")
+	fs.DurationVar(&f.length, "for", 0, "plant time to run, a `DURATION` such as 2m (default: until interrupted; with --out or --csv, the scenario's length)")
 	fs.StringVar(&f.out, "out", "", "write a bus recording to `FILE` instead of publishing")
 	fs.StringVar(&f.csv, "csv", "", "write a historian-style CSV to `FILE` instead of publishing")
-	fs.StringVar(&f.start, "start", "", "`time` of the first sample for --out and --csv, RFC 3339 (default: now)")
+	fs.StringVar(&f.start, "start", "", "`TIME` of the first sample for --out and --csv, RFC 3339 (default: now)")
 	fs.BoolVar(&f.printScenario, "print-scenario", false, "print the scenario as a file and exit")
-	fs.StringVar(&f.initial, "initial", "nominal", "true initial `state`: nominal (the plant file's initial state) or draw (a draw from its initial covariance around it)")
+	fs.StringVar(&f.initial, "initial", "nominal", "true initial `STATE`: nominal (the plant file's initial state) or draw (a draw from its initial covariance around it)")
 	pos, err := parseArgs(fs, args)
 	if err != nil {
 		return err
