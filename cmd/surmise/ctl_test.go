@@ -48,7 +48,7 @@ func startCtlDaemon(t *testing.T) *ctlDaemon {
 		t.Fatal(err)
 	}
 	for _, args := range [][]string{
-		{"design", "--method", "place", "--form", "prediction", "--poles", "0.995,0.99", "--name", "slow", "--time", "2026-05-04T10:00:00Z", plantFile},
+		{"design", "--method", "poles", "--form", "prediction", "--poles", "0.995,0.99", "--name", "slow", "--time", "2026-05-04T10:00:00Z", plantFile},
 		{"design", "--add", "--candidate", "--method", "kalman", "--form", "current", "--name", "kalman", "--time", "2026-05-04T10:00:00Z", plantFile},
 	} {
 		if _, stderr, code := cli(t, args...); code != 0 {
@@ -301,7 +301,7 @@ func TestRunSIGHUP(t *testing.T) {
 	if err := os.WriteFile(plantFile, src, 0o644); err != nil {
 		t.Fatal(err)
 	}
-	if _, stderr, code := cli(t, "design", "--method", "place", "--form", "prediction", "--poles", "0.995,0.99", "--name", "slow", plantFile); code != 0 {
+	if _, stderr, code := cli(t, "design", "--method", "poles", "--form", "prediction", "--poles", "0.995,0.99", "--name", "slow", plantFile); code != 0 {
 		t.Fatalf("design: %s", stderr)
 	}
 	stdout, stderr := newSyncBuffer(), newSyncBuffer()

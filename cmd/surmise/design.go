@@ -28,8 +28,9 @@ Designs a gain set for the plant's discrete model and writes the gains file
 model's fingerprint. Methods:
 
   kalman  the steady-state Kalman filter of the plant's noise (the default)
-  place   pole placement: --poles lists the error-dynamics eigenvalues, or
+  poles   pole placement: --poles lists the error-dynamics eigenvalues, or
           --faster F makes them F times faster than the plant's own modes
+          (the earlier spelling --method place is read as poles)
 
 The file is written atomically (a temporary file beside it, then a rename).
 Designing twice from the same inputs gives the same bytes: the time recorded
@@ -47,7 +48,7 @@ type designFlags struct {
 func runDesign(_ context.Context, e *env, args []string) error {
 	flags := newFlags(e, "design", designSynopsis)
 	var f designFlags
-	flags.StringVar(&f.method, "method", "", "`METHOD`: kalman or place (default kalman, or place when --poles or --faster is given)")
+	flags.StringVar(&f.method, "method", "", "`METHOD`: kalman or poles (pole placement; default kalman, or poles when --poles or --faster is given)")
 	flags.StringVar(&f.form, "form", "current", "observer `FORM`: prediction (x̂(k+1|k)) or current (x̂(k|k))")
 	flags.StringVar(&f.poles, "poles", "", "placement: the error-dynamics eigenvalues (`LIST`), comma-separated, real or complex pairs: \"0.8,0.8,0.7+0.1i,0.7-0.1i\" (0.7±0.1i stands for the pair)")
 	flags.Float64Var(&f.faster, "faster", 0, "placement by rule of thumb: observer poles `F` times faster than the plant's own modes")
@@ -85,7 +86,7 @@ func runDesign(_ context.Context, e *env, args []string) error {
 	prov := config.Provenance{Method: method, Created: created, Tool: toolVersion()}
 	var set *estimator.GainSet
 	switch method {
-	case "place":
+	case "poles":
 		var poles []complex128
 		if f.poles != "" {
 			if poles, err = parsePoles(f.poles); err != nil {
@@ -184,13 +185,16 @@ func (f *designFlags) check(fs *flag.FlagSet) (estimator.Form, string, error) {
 	if method == "" {
 		method = "kalman"
 		if set["poles"] || set["faster"] {
-			method = "place"
+			method = "poles"
 		}
 	}
+	if method == "place" {
+		method = "poles" // the word earlier versions took
+	}
 	switch method {
-	case "place":
+	case "poles":
 		if f.poles == "" && !set["faster"] {
-			return 0, "", usageError("--method place needs its poles: --poles \"p1,p2,…\" (one per state) or --faster F")
+			return 0, "", usageError("--method poles needs its poles: --poles \"p1,p2,…\" (one per state) or --faster F")
 		}
 		if f.poles != "" && set["faster"] {
 			return 0, "", usageError("give --poles or --faster, not both")
@@ -200,10 +204,10 @@ func (f *designFlags) check(fs *flag.FlagSet) (estimator.Form, string, error) {
 		}
 	case "kalman":
 		if set["poles"] || set["faster"] {
-			return 0, "", usageError("--poles and --faster are for --method place; a Kalman design takes its poles from the noise")
+			return 0, "", usageError("--poles and --faster are for --method poles; a Kalman design takes its poles from the noise")
 		}
 	default:
-		return 0, "", usageError("--method %q: want place or kalman", method)
+		return 0, "", usageError("--method %q: want poles or kalman", method)
 	}
 	if f.candidate && !f.add {
 		return 0, "", usageError("--candidate needs --add: a new gains file needs an active set")
@@ -349,7 +353,7 @@ func writeDesignSummary(out io.Writer, plant *config.Plant, g *config.GainsFile,
 	md := plant.Model
 	_, _, p := md.Dims()
 	how := "steady-state Kalman gains for the plant's noise"
-	if prov.Method == "place" {
+	if prov.Method == "poles" {
 		how = "pole placement at " + fpoles(prov.Poles)
 		if prov.Factor != 0 {
 			how += fmt.Sprintf(" (%s× faster than the plant)", fnum(prov.Factor))
