@@ -131,6 +131,7 @@ func runCtl(ctx context.Context, e *env, args []string) error {
 			return fmt.Errorf("reading the gains file: %w", err)
 		}
 		msg.Data = data
+		msg.Header.Set(daemon.HeaderSource, rest[0])
 		if f.set != "" {
 			msg.Header.Set(daemon.HeaderSet, f.set)
 		}
