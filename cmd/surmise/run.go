@@ -124,7 +124,7 @@ func runRun(ctx context.Context, e *env, args []string) error {
 				where += ")"
 			}
 			fmt.Fprintf(e.stdout, "bus:  %s\n", where)
-			fmt.Fprintf(e.stdout, "http: http://%s/metrics /healthz /readyz\n", ep.HTTPAddr)
+			fmt.Fprintf(e.stdout, "http: http://%s/ (live page)  /metrics  /healthz  /readyz\n", ep.HTTPAddr)
 			for _, p := range plants {
 				fmt.Fprintf(e.stdout, "estimator %s: every %v, gains %q, estimates on %s\n",
 					p.Plant.Name, time.Duration(p.Plant.Model.Ts*float64(time.Second)), p.Gains.Active, daemon.EstimateSubject(p.Plant))
