@@ -75,7 +75,7 @@ func TestRunEndToEnd(t *testing.T) {
 	}()
 
 	url := stdout.waitMatch(t, regexp.MustCompile(`(?m)^bus:  (nats://127\.0\.0\.1:\d+) \(embedded server\)$`), 20*time.Second)
-	stdout.waitMatch(t, regexp.MustCompile(`(?m)^(http): http://127\.0\.0\.1:\d+/metrics`), time.Second)
+	stdout.waitMatch(t, regexp.MustCompile(`(?m)^(http): http://127\.0\.0\.1:\d+/ \(live page\)`), time.Second)
 	nc, err := nats.Connect(url)
 	if err != nil {
 		t.Fatal(err)
