@@ -914,7 +914,7 @@ func writePatternTable(w io.Writer, indent string, pts []patternReport) {
 		return
 	}
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
-	fmt.Fprintln(tw, indent+"outputs\tspectral radius\tconvergence\tNIS\terror-dynamics eigenvalues")
+	fmt.Fprintln(tw, indent+"outputs\tspectral radius\terror time constant\tNIS\terror-dynamics eigenvalues")
 	for _, pt := range pts {
 		conv := "not stable"
 		if pt.ConvergenceSeconds != nil {

@@ -244,3 +244,19 @@ func firstLine(s string) string {
 	line, _, _ := strings.Cut(s, "\n")
 	return line
 }
+
+// TestFnumNearOne: "1" is printed only for 1; an eigenvalue a hair below it
+// shows how far below.
+func TestFnumNearOne(t *testing.T) {
+	for _, tc := range []struct {
+		x    float64
+		want string
+	}{
+		{1, "1"}, {-1, "-1"}, {0.99999978, "0.99999978"}, {1.0000004, "1.0000004"},
+		{-0.9999999, "-0.9999999"}, {0.998564, "0.998564"}, {0.5, "0.5"},
+	} {
+		if got := fnum(tc.x); got != tc.want {
+			t.Errorf("fnum(%v) = %q, want %q", tc.x, got, tc.want)
+		}
+	}
+}
