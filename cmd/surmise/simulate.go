@@ -195,7 +195,7 @@ func describeSimulation(e *env, plant *config.Plant, sc *simplant.Scenario, seed
 		fmt.Fprintf(e.stdout, "  output %-14s %s%s\n", w.Signal, prefix, w.Subject)
 	}
 	for _, s := range plant.Model.States {
-		fmt.Fprintf(e.stdout, "  truth  %-14s %s%s\n", s.Name, prefix, simplant.TruthSubject(plant, s.Name))
+		fmt.Fprintf(e.stdout, "  truth  %-14s %s%s\n", s.Name, prefix, plant.TruthSubject(s.Name))
 	}
 }
 
