@@ -96,7 +96,7 @@ func (g *GainsFile) Set(name string) *NamedSet {
 func LoadGains(path string, plant *Plant) (*GainsFile, error) {
 	data, err := os.ReadFile(path)
 	if err != nil {
-		return nil, fmt.Errorf("config: read gains file: %w", err)
+		return nil, fmt.Errorf("cannot read the gains file: %w", err)
 	}
 	return ParseGains(path, data, plant)
 }

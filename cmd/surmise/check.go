@@ -3,6 +3,7 @@ package main
 import (
 	"context"
 	"encoding/json"
+	"errors"
 	"fmt"
 
 	"surmise/config"
@@ -50,10 +51,14 @@ func runCheck(_ context.Context, e *env, args []string) error {
 	}
 	plant, err := config.LoadPlant(pos[0])
 	if err != nil {
-		// Config errors are one "file:line:column: field: message" per line;
-		// print them as they are.
-		fmt.Fprintln(e.stderr, err)
-		return &exitError{code: 1}
+		// Problems in the file are one "file:line:column: field: message"
+		// per line, printed as they are; anything else (a file that cannot
+		// be read) is said in the command's name.
+		if _, inFile := errors.AsType[*config.ErrorList](err); inFile {
+			fmt.Fprintln(e.stderr, err)
+			return &exitError{code: 1}
+		}
+		return err
 	}
 	gainsPath, explicit := plant.GainsPath, false
 	if len(pos) == 2 {
