@@ -388,5 +388,6 @@ func writeDesignSummary(out io.Writer, plant *config.Plant, g *config.GainsFile,
 		roles += ", candidate " + g.Candidate
 	}
 	fmt.Fprintf(&buf, "wrote %s (%s; %s)\n", where, fmt.Sprintf("%d %s", len(g.Sets), pluralWord(len(g.Sets), "gain set", "gain sets")), roles)
+	fmt.Fprintln(&buf, check.Caution)
 	out.Write(buf.Bytes())
 }
