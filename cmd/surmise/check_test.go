@@ -151,7 +151,7 @@ func TestCheckTimeConstantsDemo(t *testing.T) {
 	// The committed gains: each fixed set has gains for both single sensors,
 	// every gain with S (NIS available) and its poles inside the unit circle.
 	g := rep.Gains
-	if g == nil || g.Active != "place-prediction" || g.Candidate != "kalman-current" || len(g.Sets) != 2 {
+	if g == nil || g.Active != "poles-prediction" || g.Candidate != "kalman-current" || len(g.Sets) != 2 {
 		t.Fatalf("gains report %+v", g)
 	}
 	for _, s := range g.Sets {
@@ -166,7 +166,7 @@ func TestCheckTimeConstantsDemo(t *testing.T) {
 	}
 	// The placed set achieved the poles it asked for.
 	if got := g.Sets[0].Patterns[0].SpectralRadius; math.Abs(got-0.997) > 1e-9 {
-		t.Errorf("place-prediction spectral radius %v, want 0.997 (its requested slowest pole)", got)
+		t.Errorf("poles-prediction spectral radius %v, want 0.997 (its requested slowest pole)", got)
 	}
 }
 
