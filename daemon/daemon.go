@@ -619,6 +619,9 @@ func (d *Daemon) missing() []string {
 		if e.lastTick.Load() == 0 {
 			m = append(m, "estimator "+e.name+": no tick yet")
 		}
+		if !e.sampled.Load() {
+			m = append(m, "estimator "+e.name+": no sample received yet on its wired subjects (every tick so far ran without inputs or measurements)")
+		}
 	}
 	return m
 }
