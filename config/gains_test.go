@@ -31,7 +31,7 @@ func TestParseGainsCart(t *testing.T) {
 	if place == nil || place.Set.Form != estimator.Prediction || len(place.Set.Gains) != 2 {
 		t.Fatalf("poles-half = %+v", place)
 	}
-	// Closed form (REFERENCES.md): double integrator, T = 0.1, poles 0.5, 0.5 → L_p = [1, 2.5].
+	// Closed form (SOURCES.md: double-integrator-placement): double integrator, T = 0.1, poles 0.5, 0.5 → L_p = [1, 2.5].
 	pos := place.Set.Gains[1]
 	if pos.Outputs != 1 || pos.L.At(0, 0) != 1 || pos.L.At(1, 0) != 2.5 {
 		t.Errorf("position-only gain %v %v", pos.Outputs, mat.Formatted(pos.L))

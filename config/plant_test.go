@@ -52,7 +52,7 @@ func closeTo(got, want mat.Matrix, tol float64) bool {
 
 // TestHotWaterLoop parses the continuous demo plant (discretised by
 // estimator.Discretise) and its discrete variant, whose A, B and Q were
-// computed from the same file by scipy.linalg.expm (zero-order hold and Van
+// computed from the same file (SOURCES.md: hotwater-loop) by scipy.linalg.expm (zero-order hold and Van
 // Loan, cross-checked by quadrature) in testdata/plants/hotwater_loop.py.
 func TestHotWaterLoop(t *testing.T) {
 	cont := mustLoad(t, hotwaterFile)

@@ -17,7 +17,7 @@ import (
 	"surmise/estimator"
 )
 
-// The control service (DESIGN.md §5): one NATS micro service named
+// The control service: one NATS micro service named
 // ControlService per daemon, with one group of endpoints per estimator,
 //
 //	surmise.control.<estimator>.status    no body            → StatusReply
@@ -128,7 +128,7 @@ func StartControl(nc *nats.Conn, comms []*Commissioner) (micro.Service, error) {
 // ControlSchema is where the JSON Schema of the control requests and replies
 // is, in the source repository; an endpoint's metadata names the definition
 // of its request and reply in it.
-const ControlSchema = "schema/control.schema.json"
+const ControlSchema = "daemon/schema/control.schema.json"
 
 // controlEndpoint is one verb of the control service: its handler and what
 // `nats micro info surmise` shows of it.

@@ -63,6 +63,10 @@ func cli(t *testing.T, args ...string) (stdout, stderr string, code int) {
 }
 
 // golden compares got with testdata/golden/name, or rewrites it with -update.
+// The golden files are regression snapshots written by the code under test:
+// they catch an unintended change of the output, not a wrong number. The
+// numbers are checked against outside values elsewhere (check_ref_test.go,
+// and the closed forms in the tests that call golden).
 func golden(t *testing.T, name, got string) {
 	t.Helper()
 	path := filepath.Join("testdata", "golden", name)

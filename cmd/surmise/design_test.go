@@ -58,7 +58,7 @@ func near(t *testing.T, what string, got, want, tol float64) {
 }
 
 // TestDesignDoubleIntegratorGolden places both observer poles of the double
-// integrator at 0.5; the written gains are the closed forms of REFERENCES.md:
+// integrator at 0.5; the written gains are the closed forms of SOURCES.md: double-integrator-placement,
 // L_p = [1, 2.5], L_c = [0.75, 2.5].
 func TestDesignDoubleIntegratorGolden(t *testing.T) {
 	for _, tc := range []struct {
@@ -108,7 +108,7 @@ func TestDesignDoubleIntegratorGolden(t *testing.T) {
 
 // TestDesignRandomWalkGolden designs the steady-state Kalman filter of the
 // scalar random walk, q = r = 1: K = 0.6180339887, P⁻ = 1.6180339887
-// (closed form, REFERENCES.md).
+// (closed form, SOURCES.md: random-walk-riccati).
 func TestDesignRandomWalkGolden(t *testing.T) {
 	pf := plantPath("cmd:random-walk.yaml")
 	pMinus := (1 + math.Sqrt(5)) / 2 // (q + √(q² + 4qr))/2

@@ -17,8 +17,8 @@ import (
 	"surmise/daemon"
 )
 
-// schemaDir holds the JSON Schemas of the messages, at the repository's root.
-var schemaDir = filepath.Join("..", "..", "schema")
+// schemaDir holds the JSON Schemas of the messages, under daemon/schema.
+var schemaDir = filepath.Join("..", "..", "daemon", "schema")
 
 // compileSchema compiles the schema in file, or its definition def ("" for
 // the whole file), asserting formats such as date-time.
@@ -69,7 +69,7 @@ func validate(t *testing.T, s *jsonschema.Schema, what string, data []byte) {
 
 // TestMessagesMatchSchemas validates the messages a running daemon
 // publishes and answers — an estimate, a shadow estimate, every control
-// reply and refusal, the audit trail — against the schemas under schema/,
+// reply and refusal, the audit trail — against the schemas under daemon/schema/,
 // and the service's metadata against them: each endpoint names a request
 // and reply definition that exists.
 func TestMessagesMatchSchemas(t *testing.T) {
@@ -204,7 +204,7 @@ func TestMessagesMatchSchemas(t *testing.T) {
 }
 
 // TestSampleSchema: the sample payloads `surmise simulate` wrote into the
-// demo recording match schema/sample.schema.json, and for JSON payloads the
+// demo recording match daemon/schema/sample.schema.json, and for JSON payloads the
 // schema and the daemon's decoder agree on what is a sample.
 func TestSampleSchema(t *testing.T) {
 	s := compileSchema(t, "sample.schema.json", "")
