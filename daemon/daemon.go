@@ -32,6 +32,10 @@ const drainTimeout = 5 * time.Second
 type PlantSpec struct {
 	Plant *config.Plant
 	Gains *config.GainsFile
+	// GainsBytes, when not nil, are the bytes Gains was parsed from, for
+	// gains that are not in the file the plant names (built into the
+	// program, say): their SHA-256 is what a status reports as in effect.
+	GainsBytes []byte
 }
 
 // EstimateSubject returns the subject the estimates of plant are published
