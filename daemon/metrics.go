@@ -132,7 +132,7 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 		reloads: counter("surmise_gain_reloads_total",
 			"Gain reloads, by result.", labelEstimator, labelResult),
 		lastReload: gauge("surmise_gain_last_reload_success",
-			"1 if the latest gain reload succeeded, 0 if it was refused.", labelEstimator),
+			"1 if the latest gain load succeeded (the load at start-up counts), 0 if it was refused.", labelEstimator),
 		sampleToEst: histogram("surmise_sample_to_estimate_seconds",
 			"Time from the receipt of a measurement to the publication of the estimate that used it.", labelEstimator),
 		ready: gauge("surmise_ready",
@@ -255,6 +255,10 @@ func (m *Metrics) Estimator(name string, outputs, states, signals []string, gain
 		e.rejected = append(e.rejected, byReason)
 	}
 	e.primary = e.Gains(gains)
+	// The gains an estimator starts with were loaded and accepted: that
+	// first load is the latest successful one, so that an alert on a
+	// refused reload stays quiet on a fresh daemon.
+	e.lastReload.Set(1)
 	return e
 }
 
