@@ -107,6 +107,21 @@ type Options struct {
 	// the control service still reload).
 	ReloadDebounce time.Duration
 
+	// Standby makes the daemon wait for an estimator that another daemon
+	// runs on the same bus, instead of refusing to start: it subscribes and
+	// ticks (so its estimate is current) but publishes nothing, and its
+	// /readyz fails, until the other daemon's lease on the estimator lapses
+	// or is released; then it takes over.
+	Standby bool
+
+	// LeaseBucket is the JetStream key-value bucket of the estimators'
+	// leases; empty means DefaultLeaseBucket. LeaseTTL is how long a lease
+	// outlives its last renewal (a dead daemon's estimators are taken over
+	// after about that long); zero means lease.DefaultTTL, and an existing
+	// bucket keeps its own.
+	LeaseBucket string
+	LeaseTTL    time.Duration
+
 	// Started, when not nil, is called once by Run when the daemon has
 	// started — server up, listeners bound, subscriptions made, ticks
 	// scheduled — with the addresses it uses.
@@ -221,8 +236,9 @@ type Daemon struct {
 
 	ran atomic.Bool
 
-	comm *commissioning // reloads, audit, control service (reload.go)
-	page *Page          // the live page at / (page.go)
+	comm   *commissioning // reloads, audit, control service (reload.go)
+	leases leasing        // the one-writer leases (leases.go)
+	page   *Page          // the live page at / (page.go)
 
 	// Set by Run.
 	ns          *server.Server // the embedded server, when it is ours
@@ -398,6 +414,9 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 		return ep, err
 	}
 	d.bus = bus
+	if err := d.startLeases(g, bus.Conn()); err != nil {
+		return ep, err
+	}
 	for _, e := range d.estimators {
 		if err := e.subscribe(bus.Conn()); err != nil {
 			return ep, err
@@ -454,6 +473,7 @@ func (d *Daemon) shutdown(g *Group) error {
 		d.schedCancel()
 		<-d.schedDone
 	}
+	d.releaseLeases()
 	d.stopCommissioning()
 	if d.bus != nil {
 		if err := d.bus.Close(drainTimeout); err != nil {
@@ -607,7 +627,13 @@ func (d *Daemon) missing() []string {
 	case !d.busConnected():
 		m = append(m, "bus not connected")
 	}
+	if w := d.leases.waiting.Load(); w != nil {
+		m = append(m, *w)
+	}
 	for _, e := range d.estimators {
+		if d.scheduled.Load() != 0 && d.leases.waiting.Load() == nil && !e.mayPublish() {
+			m = append(m, "estimator "+e.name+": its lease is not held")
+		}
 		if !e.gainsOK.Load() {
 			m = append(m, "estimator "+e.name+": gains not valid")
 		}

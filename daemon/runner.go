@@ -9,6 +9,7 @@ import (
 	"github.com/nats-io/nats.go"
 
 	"surmise/config"
+	"surmise/daemon/lease"
 	"surmise/estimator"
 )
 
@@ -33,6 +34,7 @@ type Estimator struct {
 	signals []signal // the engine's signals: inputs, then outputs
 
 	gains   atomic.Pointer[config.GainsFile]
+	lease   atomic.Pointer[lease.Lease] // this estimator's, once taken or awaited
 	gainsOK atomic.Bool
 
 	lastTick atomic.Int64 // start of the latest tick (Daemon.now), 0 before the first
@@ -187,7 +189,7 @@ func (e *Estimator) tick(t Tick) {
 	d := e.d
 	e.engine.Tick(t.Due, e.est)
 	e.payload = e.est.AppendJSON(e.payload[:0])
-	connected := d.busConnected()
+	connected := d.busConnected() && e.mayPublish()
 	if connected {
 		// With the reconnect buffer off, Publish fails rather than queue
 		// when the connection dropped since IsConnected: nothing stale is

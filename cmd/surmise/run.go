@@ -40,6 +40,13 @@ file runs in shadow on "<publish>.shadow.estimate"; 'surmise ctl' promotes it,
 rolls back, loads gains and resets the state over the bus. A changed plant
 file is refused until a restart.
 
+One daemon writes each estimator: before publishing, the daemon takes the
+estimator's lease on the bus (a JetStream key-value entry, renewed every
+few seconds). A second daemon for the same estimator refuses to start and
+names the first; with --standby it waits, ticking but publishing nothing,
+and takes over when the first stops or its lease lapses (about 6 s after it
+died).
+
 SIGINT or SIGTERM stops it after the tick in progress.`
 
 // runFlags are the flags of `surmise run`. The names are fixed: the systemd
@@ -52,6 +59,7 @@ type runFlags struct {
 	listen               string
 	logFormat, logLevel  string
 	stateDir             string
+	standby              bool
 }
 
 func runRun(ctx context.Context, e *env, args []string) error {
@@ -67,6 +75,7 @@ func runRun(ctx context.Context, e *env, args []string) error {
 	flags.StringVar(&f.listen, "listen", daemon.DefaultHTTPAddr, "HTTP `address` for /metrics, /healthz and /readyz")
 	flags.StringVar(&f.logFormat, "log-format", "text", "log `format`: text or json (on standard error)")
 	flags.StringVar(&f.logLevel, "log-level", "info", "log `level`: debug, info, warn or error")
+	flags.BoolVar(&f.standby, "standby", false, "when another daemon runs an estimator of these plant files on the bus, wait and take over when it stops, instead of refusing to start")
 	flags.StringVar(&f.stateDir, "state-dir", "", "`directory` for the embedded server's JetStream store (default: a temporary one, removed at exit)")
 	pos, err := parseArgs(flags, args)
 	if err != nil {
@@ -111,6 +120,7 @@ func runRun(ctx context.Context, e *env, args []string) error {
 		Listen:       f.listen,
 		Logger:       log,
 		StateDir:     f.stateDir,
+		Standby:      f.standby,
 		Started: func(ep daemon.Endpoints) {
 			where := "connecting to " + ep.BusURL
 			if ep.Embedded {

@@ -1,0 +1,186 @@
+package daemon
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"strings"
+	"sync/atomic"
+	"time"
+
+	"github.com/nats-io/nats.go"
+	"github.com/nats-io/nats.go/jetstream"
+
+	"surmise/daemon/lease"
+)
+
+// DefaultLeaseBucket is the JetStream key-value bucket of the estimators'
+// leases: one entry per estimator name, naming the daemon that runs it.
+const DefaultLeaseBucket = "surmise-leases"
+
+// leaseOpenTimeout bounds the binding of the bucket and each first attempt.
+const leaseOpenTimeout = 5 * time.Second
+
+// leasing is the daemon's side of the one-writer rule: before an estimator
+// publishes, its daemon holds the estimator's lease on the bus (package
+// lease). A second daemon for the same estimator is refused, or with
+// Options.Standby waits and takes over when the lease lapses.
+type leasing struct {
+	mgr *lease.Manager
+	// off is set when the server has no JetStream: the daemon runs without
+	// leases (and says so), publishing whenever connected.
+	off atomic.Bool
+	// waiting describes the leases awaited, for /readyz; empty when none.
+	waiting atomic.Pointer[string]
+}
+
+// mayPublish reports whether e may publish its estimates now: its daemon
+// holds its lease, or runs without leases.
+func (e *Estimator) mayPublish() bool {
+	if e.d.leases.off.Load() {
+		return true
+	}
+	l := e.lease.Load()
+	return l != nil && l.Held()
+}
+
+// takeLeases binds the lease bucket and takes the lease of every estimator.
+// Without Standby a lease held by another daemon is an error naming it;
+// with Standby the estimators whose lease is held are left waiting and
+// their leases are returned for the caller to wait on.
+func (d *Daemon) takeLeases(nc *nats.Conn) (awaited []*lease.Lease, err error) {
+	ctx, cancel := context.WithTimeout(context.Background(), leaseOpenTimeout)
+	defer cancel()
+	bucket := d.opts.LeaseBucket
+	if bucket == "" {
+		bucket = DefaultLeaseBucket
+	}
+	mgr, err := lease.Open(ctx, nc, lease.Config{Bucket: bucket, TTL: d.opts.LeaseTTL, Log: d.log})
+	if errors.Is(err, jetstream.ErrJetStreamNotEnabled) || errors.Is(err, jetstream.ErrJetStreamNotEnabledForAccount) ||
+		errors.Is(err, nats.ErrNoResponders) {
+		d.leases.off.Store(true)
+		d.log.Warn("the NATS server has no JetStream: running without the one-writer lease; nothing stops a second daemon from publishing the same estimates")
+		return nil, nil
+	}
+	if err != nil {
+		return nil, fmt.Errorf("taking the estimators' leases: %w", err)
+	}
+	d.leases.mgr = mgr
+	var held []string
+	for _, e := range d.estimators {
+		l, err := mgr.Acquire(ctx, e.name)
+		var taken *lease.HeldError
+		switch {
+		case err == nil:
+			e.lease.Store(l)
+			continue
+		case !errors.As(err, &taken):
+			return nil, fmt.Errorf("estimator %s: taking its lease: %w", e.name, err)
+		case !d.opts.Standby:
+			return nil, fmt.Errorf("estimator %s runs in another daemon (lease %s in bucket %s): %w; stop that one, or start this one as its standby (--standby)", e.name, e.name, bucket, err)
+		}
+		l, err = mgr.Standby(e.name)
+		if err != nil {
+			return nil, err
+		}
+		e.lease.Store(l)
+		awaited = append(awaited, l)
+		held = append(held, taken.Error())
+		d.log.Info("standing by: another daemon runs this estimator", "estimator", e.name, "holder", taken.Owner.String(), "since", taken.Owner.Since)
+	}
+	if len(held) > 0 {
+		s := "standby: estimator " + strings.Join(held, "; estimator ")
+		d.leases.waiting.Store(&s)
+	}
+	return awaited, nil
+}
+
+// awaitLeases waits until every lease of awaited is taken, or ctx ends.
+func (d *Daemon) awaitLeases(ctx context.Context, awaited []*lease.Lease) error {
+	for _, l := range awaited {
+		select {
+		case <-ctx.Done():
+			return ctx.Err()
+		case <-l.Acquired():
+			d.log.Info("took over the estimator: its lease lapsed or was released", "estimator", l.Key())
+		}
+	}
+	d.leases.waiting.Store(nil)
+	return nil
+}
+
+// watchLeases returns an error as soon as a held lease is lost: the daemon
+// then stops (its estimates were already withheld by mayPublish), so that a
+// supervisor restarts it to refuse or stand by.
+func (d *Daemon) watchLeases(ctx context.Context) error {
+	for _, e := range d.estimators {
+		l := e.lease.Load()
+		if l == nil {
+			continue
+		}
+		select {
+		case <-ctx.Done():
+			return nil
+		case <-l.Lost():
+			return fmt.Errorf("estimator %s: lost its lease (not renewed in time, or taken by another daemon); stopped publishing", e.name)
+		case <-l.Done():
+		}
+	}
+	<-ctx.Done()
+	return nil
+}
+
+// releaseLeases gives the leases up at shutdown, so that a standby takes
+// over at once.
+func (d *Daemon) releaseLeases() {
+	if d.leases.mgr == nil {
+		return
+	}
+	ctx, cancel := context.WithTimeout(context.Background(), time.Second)
+	defer cancel()
+	if err := d.leases.mgr.Close(ctx); err != nil {
+		d.log.Warn("leases not released; a standby takes over when they lapse", "error", err, "ttl", d.leases.mgr.TTL())
+	}
+}
+
+// startLeases takes the estimators' leases before anything is published.
+// When the server is reachable this happens now, and a refusal stops the
+// start-up; otherwise a goroutine takes them once connected (a refusal
+// then stops the daemon). Standby leases are awaited in the background.
+// Either way a goroutine stops the daemon when a held lease is lost.
+func (d *Daemon) startLeases(g *Group, nc *nats.Conn) error {
+	wait := func(ctx context.Context, awaited []*lease.Lease) error {
+		if err := d.awaitLeases(ctx, awaited); err != nil {
+			return nil // stopped while standing by
+		}
+		return d.watchLeases(ctx)
+	}
+	if nc.IsConnected() {
+		awaited, err := d.takeLeases(nc)
+		if err != nil {
+			return err
+		}
+		g.Go("lease", func(ctx context.Context) error { return wait(ctx, awaited) })
+		return nil
+	}
+	s := "no lease yet: the bus is not connected"
+	d.leases.waiting.Store(&s)
+	g.Go("lease", func(ctx context.Context) error {
+		t := time.NewTicker(100 * time.Millisecond)
+		defer t.Stop()
+		for !nc.IsConnected() {
+			select {
+			case <-ctx.Done():
+				return nil
+			case <-t.C:
+			}
+		}
+		d.leases.waiting.Store(nil)
+		awaited, err := d.takeLeases(nc)
+		if err != nil {
+			return err
+		}
+		return wait(ctx, awaited)
+	})
+	return nil
+}
