@@ -136,6 +136,10 @@ type Endpoints struct {
 	// StateDir is the directory of the embedded server's store (under
 	// StateDir/nats); empty when the daemon runs no server.
 	StateDir string
+	// LocalAccess is the directory of the local access files (nats.url,
+	// nats.user) of the embedded server, where local clients find it;
+	// empty when the daemon runs no server or could not write them.
+	LocalAccess string
 }
 
 // setDefaults fills in the zero fields of o that have a default.
@@ -239,6 +243,7 @@ type Daemon struct {
 	// Set by Run.
 	ns          *server.Server // the embedded server, when it is ours
 	tempState   string         // a temporary state directory to remove
+	localDirs   []string       // local access files to remove (local.go)
 	bus         *Bus
 	schedCancel context.CancelFunc
 	schedDone   chan struct{}
@@ -369,7 +374,7 @@ func (d *Daemon) Run(ctx context.Context) (err error) {
 	if err := d.opts.Notify(sd.SdNotifyReady); err != nil {
 		d.log.Warn("sd_notify READY=1 failed", "error", err)
 	}
-	d.log.Info("daemon started", "bus", ep.BusURL, "embedded", ep.Embedded, "http", ep.HTTPAddr.String(), "estimators", len(d.estimators))
+	d.log.Info("daemon started", "bus", RedactURL(ep.BusURL), "embedded", ep.Embedded, "http", ep.HTTPAddr.String(), "estimators", len(d.estimators))
 	if d.opts.Started != nil {
 		d.opts.Started(ep)
 	}
@@ -381,6 +386,12 @@ func (d *Daemon) Run(ctx context.Context) (err error) {
 func (d *Daemon) start(g *Group) (Endpoints, error) {
 	d.started.Store(d.now())
 	var ep Endpoints
+	// The HTTP address first: one in use stops the start before anything
+	// else is started.
+	if err := d.http.Listen(); err != nil {
+		return ep, err
+	}
+	ep.HTTPAddr = d.http.Addr()
 	bo := d.opts.Bus
 	switch {
 	case bo.Embedded != nil:
@@ -397,12 +408,18 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 			d.tempState, dir = tmp, tmp
 			d.log.Info("no state directory given: the embedded server's store is temporary", "dir", tmp)
 		}
-		ns, err := StartEmbedded(EmbeddedOptions{Port: d.opts.EmbeddedPort, StoreDir: filepath.Join(dir, "nats"), Log: d.log})
+		pw, err := newLocalPassword()
 		if err != nil {
 			return ep, err
 		}
-		d.ns, bo.Embedded = ns, ns
+		ns, err := StartEmbedded(EmbeddedOptions{Port: d.opts.EmbeddedPort, StoreDir: filepath.Join(dir, "nats"), Log: d.log,
+			LocalPassword: pw, Anonymous: anonymousPermissions(d.opts.Plants)})
+		if err != nil {
+			return ep, err
+		}
+		d.ns, bo.Embedded, bo.User, bo.Password = ns, ns, LocalUser, pw
 		ep.BusURL, ep.Embedded, ep.StateDir = ns.ClientURL(), true, dir
+		ep.LocalAccess = d.writeLocalAccess(LocalAccess{URL: ns.ClientURL(), User: LocalUser, Password: pw})
 	}
 
 	bus, err := Connect(bo, d.metrics, d.log)
@@ -430,10 +447,6 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 		}
 	}
 
-	if err := d.http.Listen(); err != nil {
-		return ep, err
-	}
-	ep.HTTPAddr = d.http.Addr()
 	g.Go("http", d.http.Serve)
 
 	// The scheduler has a context of its own: shutdown stops the ticks
@@ -481,6 +494,9 @@ func (d *Daemon) shutdown(g *Group) error {
 		errs = append(errs, err)
 	}
 	if d.ns != nil {
+		for _, dir := range d.localDirs {
+			removeLocalAccess(dir)
+		}
 		d.ns.Shutdown()
 		d.ns.WaitForShutdown()
 	}
