@@ -8,7 +8,6 @@ import (
 	"testing"
 	"time"
 
-
 	"surmise/daemon"
 	"surmise/daemon/recording"
 	"surmise/daemon/simplant"
