@@ -235,3 +235,17 @@ func connectLocal(t testing.TB, r *running) *nats.Conn {
 	t.Cleanup(nc.Close)
 	return nc
 }
+
+func TestRedactURL(t *testing.T) {
+	for _, c := range []struct{ in, want string }{
+		{"nats://127.0.0.1:4222", "nats://127.0.0.1:4222"},
+		{"nats://user:pw@a:4222", "nats://user:xxxxx@a:4222"},
+		{"nats://token@a:4222", "nats://xxxxx@a:4222"},
+		{"nats://a:1,tls://u:p@b:2", "nats://a:1,tls://u:xxxxx@b:2"},
+		{"nats://u:p%zz@a", "(unparsable URL, hidden)"},
+	} {
+		if got := daemon.RedactURL(c.in); got != c.want {
+			t.Errorf("RedactURL(%q) = %q, want %q", c.in, got, c.want)
+		}
+	}
+}

@@ -40,18 +40,19 @@ estimator only keeps up with a sped-up plant when it ticks at the same scale
 ('surmise demo --speed' does that); 'surmise run' ticks in real time.`
 
 type simulateFlags struct {
-	nats, scenario, out, csv, start string
-	initial                         string
-	seed                            uint64
-	speed                           float64
-	length                          time.Duration
-	printScenario                   bool
+	bus                       natsFlags
+	scenario, out, csv, start string
+	initial                   string
+	seed                      uint64
+	speed                     float64
+	length                    time.Duration
+	printScenario             bool
 }
 
 func runSimulate(ctx context.Context, e *env, args []string) error {
 	fs := newFlags(e, "simulate", simulateSynopsis)
 	var f simulateFlags
-	fs.StringVar(&f.nats, "nats", nats.DefaultURL, "NATS server `URL` to publish to")
+	f.bus.register(fs, "NATS server `URL`s to publish to, comma-separated (default: this user's newest local daemon, found by its access files, else "+nats.DefaultURL+")")
 	fs.Uint64Var(&f.seed, "seed", 1, "`seed` of the noise, the initial state, the PRBS phase and the jitter")
 	fs.Float64Var(&f.speed, "speed", 1, "time `scale`: 1 is real time, 10 ten times faster")
 	fs.StringVar(&f.scenario, "scenario", "rehearsal", "scenario `FILE`, or a built-in: "+strings.Join(simplant.BuiltinNames, ", "))
@@ -78,7 +79,7 @@ func runSimulate(ctx context.Context, e *env, args []string) error {
 		return usageError("--for %v: want a positive duration", f.length)
 	case toFile && explicit["speed"]:
 		return usageError("--speed paces publishing; --out and --csv write plant time at once")
-	case toFile && explicit["nats"]:
+	case toFile && (explicit["nats"] || f.bus.credentials()):
 		return usageError("--out and --csv write a file; they publish nothing to --nats")
 	case f.initial != "nominal" && f.initial != "draw":
 		return usageError("--initial %q: want nominal or draw", f.initial)
@@ -104,9 +105,9 @@ func runSimulate(ctx context.Context, e *env, args []string) error {
 	if err != nil {
 		return err
 	}
-	nc, err := nats.Connect(f.nats, nats.Name("surmise-simulate"), nats.MaxReconnects(-1), nats.ReconnectBufSize(-1))
+	nc, err := f.bus.dial(5*time.Second, nil, nats.Name("surmise-simulate"), nats.MaxReconnects(-1), nats.ReconnectBufSize(-1))
 	if err != nil {
-		return fmt.Errorf("connecting to %s: %w (is a server running? 'surmise run' and 'surmise demo' start one)", f.nats, err)
+		return err
 	}
 	defer nc.Close()
 	describeSimulation(e, plant, sc, f.seed, f.speed)
