@@ -240,7 +240,28 @@ type Bus struct {
 	closed  chan struct{} // closed by the closed handler
 	closing atomic.Bool   // set by Close: the disconnect that follows is ours
 	log     *slog.Logger
+
+	warnLimit logLimiter // bus errors (a slow consumer repeats them)
+	dropMu    sync.Mutex
+	dropped   map[*nats.Subscription]int // drops counted so far, per subscription
+
+	// stalled is set while a connected server does not answer (see probe).
+	stalled   atomic.Bool
+	probeDone chan struct{}
 }
+
+// A stalled server — a process stopped or hung, a link that silently
+// drops — keeps the TCP connection open, and the client would queue
+// publishes into it for as long as its pings allow. The bus probes the
+// server every probeEvery with a PING; when no PONG came for stallAfter it
+// is stalled: Up turns false (estimates are withheld, /readyz fails,
+// surmise_bus_connected is 0) until the server answers again. The client's
+// own pings (every second, two outstanding) then drop the connection and
+// reconnect, about three seconds after the server's last answer.
+const (
+	probeEvery = 250 * time.Millisecond
+	stallAfter = time.Second
+)
 
 // Connect connects to the server of opts. It returns at once even when the
 // server cannot be reached yet: the connection keeps retrying, forever, with
@@ -291,7 +312,7 @@ func Connect(opts BusOptions, m *Metrics, log *slog.Logger) (*Bus, error) {
 		// client's default of minutes, and a write to a stuck socket gives
 		// up after a second instead of a minute, so a tick's publish never
 		// waits long on a dead link.
-		nats.PingInterval(5 * time.Second),
+		nats.PingInterval(time.Second),
 		nats.MaxPingsOutstanding(2),
 		nats.FlusherTimeout(time.Second),
 		nats.ConnectHandler(func(nc *nats.Conn) {
@@ -321,8 +342,17 @@ func Connect(opts BusOptions, m *Metrics, log *slog.Logger) (*Bus, error) {
 			subject := ""
 			if sub != nil {
 				subject = sub.Subject
+				if errors.Is(err, nats.ErrSlowConsumer) && m != nil {
+					m.BusDropped(DropPendingLimit, b.newlyDropped(sub))
+				}
 			}
-			log.Warn("bus error", "subject", subject, "error", err)
+			if ok, held := b.warnLimit.allow(time.Now().UnixNano(), int64(busWarnEvery)); ok {
+				args := []any{"subject", subject, "error", err}
+				if held > 0 {
+					args = append(args, "unlogged_since_last", held)
+				}
+				log.Warn("bus error", args...)
+			}
 		}),
 	}
 	auth, err := authOptions(opts)
@@ -341,6 +371,8 @@ func Connect(opts BusOptions, m *Metrics, log *slog.Logger) (*Bus, error) {
 		return nil, fmt.Errorf("bus: connecting to %s: %w", RedactURL(url), err)
 	}
 	b.nc = nc
+	b.probeDone = make(chan struct{})
+	go b.probe(m)
 	if nc.IsConnected() {
 		setConnected(true)
 	} else {
@@ -412,8 +444,72 @@ func authOptions(opts BusOptions) ([]nats.Option, error) {
 	return out, nil
 }
 
+// busWarnEvery is the shortest interval between two logged bus errors; the
+// ones in between are counted in the next line.
+const busWarnEvery = 10 * time.Second
+
+// newlyDropped returns how many messages sub dropped since the last call.
+func (b *Bus) newlyDropped(sub *nats.Subscription) int {
+	total, err := sub.Dropped()
+	if err != nil {
+		return 0
+	}
+	b.dropMu.Lock()
+	defer b.dropMu.Unlock()
+	if b.dropped == nil {
+		b.dropped = map[*nats.Subscription]int{}
+	}
+	n := total - b.dropped[sub]
+	b.dropped[sub] = total
+	return max(n, 0)
+}
+
 // Conn returns the NATS connection.
 func (b *Bus) Conn() *nats.Conn { return b.nc }
+
+// Up reports whether the bus may be published on now: connected, and the
+// server answered within stallAfter.
+func (b *Bus) Up() bool { return b.nc.IsConnected() && !b.stalled.Load() }
+
+// probe watches a connected server's answers until the connection closes;
+// see stallAfter.
+func (b *Bus) probe(m *Metrics) {
+	defer close(b.probeDone)
+	t := time.NewTicker(probeEvery)
+	defer t.Stop()
+	last := time.Now()
+	for {
+		select {
+		case <-b.closed:
+			return
+		case <-t.C:
+		}
+		if !b.nc.IsConnected() {
+			last = time.Now() // the disconnect handlers report this
+			b.stalled.Store(false)
+			continue
+		}
+		err := b.nc.FlushTimeout(stallAfter)
+		now := time.Now()
+		if err == nil {
+			last = now
+			if b.stalled.Swap(false) {
+				b.log.Info("bus: the server answers again")
+				if m != nil {
+					m.SetBusConnected(b.nc.IsConnected())
+				}
+			}
+			continue
+		}
+		if now.Sub(last) >= stallAfter && b.nc.IsConnected() && !b.closing.Load() && !b.stalled.Swap(true) {
+			b.log.Warn("bus: the server does not answer; estimates withheld until it does", "silent_for", now.Sub(last).Round(time.Millisecond), "error", err)
+			if m != nil {
+				m.SetBusConnected(false)
+				m.BusDisconnected()
+			}
+		}
+	}
+}
 
 // Close drains the connection — subscriptions stop taking messages, those
 // already received are handled, pending publishes are flushed — and waits
@@ -430,9 +526,12 @@ func (b *Bus) Close(timeout time.Duration) error {
 	defer t.Stop()
 	select {
 	case <-b.closed:
+		<-b.probeDone
 		return nil
 	case <-t.C:
 		b.nc.Close()
+		<-b.closed
+		<-b.probeDone
 		return fmt.Errorf("bus: not closed %v after draining began", timeout)
 	}
 }

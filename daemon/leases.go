@@ -55,7 +55,12 @@ func (d *Daemon) takeLeases(nc *nats.Conn) (awaited []*lease.Lease, err error) {
 	if bucket == "" {
 		bucket = DefaultLeaseBucket
 	}
-	mgr, err := lease.Open(ctx, nc, lease.Config{Bucket: bucket, TTL: d.opts.LeaseTTL, Log: d.log})
+	changed := func(key string, held bool) {
+		if held {
+			d.log.Info("estimator's lease held: publishing", "estimator", key)
+		}
+	}
+	mgr, err := lease.Open(ctx, nc, lease.Config{Bucket: bucket, TTL: d.opts.LeaseTTL, Log: d.log, Changed: changed})
 	if errors.Is(err, jetstream.ErrJetStreamNotEnabled) || errors.Is(err, jetstream.ErrJetStreamNotEnabledForAccount) ||
 		errors.Is(err, nats.ErrNoResponders) {
 		d.leases.off.Store(true)
@@ -109,39 +114,68 @@ func (d *Daemon) awaitLeases(ctx context.Context, awaited []*lease.Lease) error 
 	return nil
 }
 
-// watchLeases returns an error as soon as a held lease is lost: the daemon
-// then stops (its estimates were already withheld by mayPublish), so that a
-// supervisor restarts it to refuse or stand by.
+// watchLeases notices a lost lease — not renewed in time (a stalled or
+// unreachable server) or taken by another daemon — whose estimator's
+// estimates mayPublish already withholds, and waits to take it again:
+// at once when the server comes back and nobody took it, else as the
+// standby of the daemon that did.
 func (d *Daemon) watchLeases(ctx context.Context) error {
-	for _, e := range d.estimators {
-		l := e.lease.Load()
-		if l == nil {
-			continue
-		}
+	t := time.NewTicker(250 * time.Millisecond)
+	defer t.Stop()
+	for {
 		select {
 		case <-ctx.Done():
 			return nil
-		case <-l.Lost():
-			return fmt.Errorf("estimator %s: lost its lease (not renewed in time, or taken by another daemon); stopped publishing", e.name)
-		case <-l.Done():
+		case <-t.C:
+		}
+		for _, e := range d.estimators {
+			l := e.lease.Load()
+			if l == nil {
+				continue
+			}
+			select {
+			case <-l.Lost():
+			default:
+				continue
+			}
+			d.log.Error("estimator's lease lost: its estimates are withheld until this daemon holds it again", "estimator", e.name)
+			nl, err := d.leases.mgr.Standby(e.name)
+			if err != nil {
+				return fmt.Errorf("estimator %s: waiting for its lease again: %w", e.name, err)
+			}
+			e.lease.Store(nl)
 		}
 	}
-	<-ctx.Done()
-	return nil
 }
 
 // releaseLeases gives the leases up at shutdown, so that a standby takes
-// over at once.
-func (d *Daemon) releaseLeases() {
+// over at once. It waits at most leaseReleaseWait: on a stalled server the
+// release cannot finish, the leases lapse after their TTL instead, and the
+// stop goes on. The returned function waits for the release to end, which
+// it does once the bus is closed.
+func (d *Daemon) releaseLeases() (wait func()) {
 	if d.leases.mgr == nil {
-		return
+		return func() {}
 	}
-	ctx, cancel := context.WithTimeout(context.Background(), time.Second)
-	defer cancel()
-	if err := d.leases.mgr.Close(ctx); err != nil {
-		d.log.Warn("leases not released; a standby takes over when they lapse", "error", err, "ttl", d.leases.mgr.TTL())
+	done := make(chan struct{})
+	go func() {
+		defer close(done)
+		ctx, cancel := context.WithTimeout(context.Background(), leaseReleaseWait)
+		defer cancel()
+		if err := d.leases.mgr.Close(ctx); err != nil {
+			d.log.Warn("leases not released; a standby takes over when they lapse", "error", err, "ttl", d.leases.mgr.TTL())
+		}
+	}()
+	select {
+	case <-done:
+	case <-time.After(leaseReleaseWait):
+		d.log.Warn("leases not released in time; a standby takes over when they lapse", "ttl", d.leases.mgr.TTL())
 	}
+	return func() { <-done }
 }
+
+// leaseReleaseWait bounds the release of the leases at a stop.
+const leaseReleaseWait = 300 * time.Millisecond
 
 // startLeases takes the estimators' leases before anything is published.
 // When the server is reachable this happens now, and a refusal stops the
