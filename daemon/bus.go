@@ -346,7 +346,7 @@ func Connect(opts BusOptions, m *Metrics, log *slog.Logger) (*Bus, error) {
 					m.BusDropped(DropPendingLimit, b.newlyDropped(sub))
 				}
 			}
-			if ok, held := b.warnLimit.allow(time.Now().UnixNano(), int64(busWarnEvery)); ok {
+			if ok, held := b.warnLimit.allow(time.Now().UnixNano(), int64(busWarnEvery), ReasonUnknown); ok {
 				args := []any{"subject", subject, "error", err}
 				if held > 0 {
 					args = append(args, "unlogged_since_last", held)
