@@ -200,7 +200,8 @@ func ReadUserFile(path string) (user, password string, err error) {
 
 // anonymousPermissions are those of a client without credentials on the
 // embedded server: publish on the plants' wired subjects, subscribe to the
-// estimates (active and shadow).
+// estimates (active and shadow), and publish a simulated plant's true
+// states.
 func anonymousPermissions(plants []PlantSpec) *server.Permissions {
 	pub, sub := []string{}, []string{}
 	for _, p := range plants {
@@ -209,6 +210,11 @@ func anonymousPermissions(plants []PlantSpec) *server.Permissions {
 		}
 		for _, w := range p.Plant.Outputs {
 			pub = append(pub, w.Subject)
+		}
+		// A simulated plant's true states (surmise simulate): nothing
+		// live reads them, a replay compares with them.
+		for _, st := range p.Plant.Model.States {
+			pub = append(pub, p.Plant.TruthSubject(st.Name))
 		}
 		sub = append(sub, EstimateSubject(p.Plant), ShadowSubject(EstimateSubject(p.Plant)))
 	}

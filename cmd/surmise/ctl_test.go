@@ -405,3 +405,14 @@ func TestNISWords(t *testing.T) {
 		}
 	}
 }
+
+// localUser reads the user and password the daemon of c wrote for local
+// clients (nats.user in its state directory).
+func localUser(t *testing.T, c *ctlDaemon) (user, password string) {
+	t.Helper()
+	user, password, err := daemon.ReadUserFile(filepath.Join(c.stateDir, daemon.LocalUserFile))
+	if err != nil {
+		t.Fatal(err)
+	}
+	return user, password
+}
