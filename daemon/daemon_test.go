@@ -156,6 +156,7 @@ func startDaemon(t testing.TB, opts daemon.Options) *running {
 	select {
 	case r.ep = <-started:
 	case err := <-done:
+		once.Do(func() {}) // Run has returned: nothing to stop
 		t.Fatalf("Run returned before starting: %v", err)
 	case <-time.After(20 * time.Second):
 		t.Fatal("the daemon did not start in 20 s")
@@ -432,13 +433,13 @@ func TestNotify(t *testing.T) {
 }
 
 // TestBadSamples sends payloads that must be refused: each is counted by
-// its reason, the log says so once per signal per 10 s, and the daemon goes
-// on.
+// its reason, the log says so at once for the first, summarises the others
+// in one line when the interval is over, and the daemon goes on.
 func TestBadSamples(t *testing.T) {
 	spec := demoPlant(t, 20*time.Millisecond)
 	var log syncLog
 	r := startDaemon(t, daemon.Options{Plants: []daemon.PlantSpec{spec}, EmbeddedPort: -1,
-		Logger: slog.New(slog.NewTextHandler(&log, nil))})
+		Logger: slog.New(slog.NewTextHandler(&log, nil)), RefusedLogInterval: 2 * time.Second})
 	nc, err := nats.Connect(r.ep.BusURL)
 	if err != nil {
 		t.Fatal(err)
@@ -474,6 +475,17 @@ func TestBadSamples(t *testing.T) {
 	if n := strings.Count(log.String(), `msg="sample refused"`); n != 1 {
 		t.Errorf("%d log lines about refused samples, want 1 (rate limited):\n%s", n, log.String())
 	}
+	// The six refused after the first are reported when the interval is
+	// over, though no further sample is refused.
+	checkFor(t, 10*time.Second, 20*time.Millisecond, func() error {
+		if !strings.Contains(log.String(), `msg="samples refused"`) {
+			return errors.New("no summary of the held-back refusals in the log")
+		}
+		return nil
+	})
+	if l := log.String(); !strings.Contains(l, "count=6") || !strings.Contains(l, "latest_reason=range") {
+		t.Errorf("the summary does not say 6 refusals, the latest for range:\n%s", l)
+	}
 	if code, body := httpGet(t, "http://"+r.ep.HTTPAddr.String()+"/healthz"); code != 200 {
 		t.Errorf("/healthz after bad samples: %d %s", code, body)
 	}
@@ -495,4 +507,43 @@ func (l *syncLog) String() string {
 	l.mu.Lock()
 	defer l.mu.Unlock()
 	return l.b.String()
+}
+
+// TestNotReadyWithoutSamples: a daemon whose estimators have never had a
+// sample ticks (every tick stale-input) but is not ready, and says why;
+// the first accepted sample makes it ready.
+func TestNotReadyWithoutSamples(t *testing.T) {
+	spec := demoPlant(t, 20*time.Millisecond)
+	r := startDaemon(t, daemon.Options{Plants: []daemon.PlantSpec{spec}, EmbeddedPort: -1})
+	readyz := "http://" + r.ep.HTTPAddr.String() + "/readyz"
+	labels := map[string]string{"estimator": spec.Plant.Name}
+	checkFor(t, 10*time.Second, 10*time.Millisecond, func() error {
+		if v, _ := gathered(t, r.reg, "surmise_ticks_total", map[string]string{"estimator": spec.Plant.Name, "status": "stale-input"}); v < 3 {
+			return fmt.Errorf("%v stale-input ticks, want 3", v)
+		}
+		return nil
+	})
+	if code, body := httpGet(t, readyz); code != 503 || !strings.Contains(body, "no sample received yet") {
+		t.Errorf("/readyz with no sample ever: %d %q, want 503 saying no sample was received", code, body)
+	}
+	if v, _ := gathered(t, r.reg, "surmise_ready", labels); v != 0 {
+		t.Errorf("surmise_ready = %v with no sample ever, want 0", v)
+	}
+	nc, err := nats.Connect(r.ep.BusURL)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer nc.Close()
+	if err := nc.Publish(spec.Plant.Outputs[0].Subject, []byte("61.5")); err != nil {
+		t.Fatal(err)
+	}
+	checkFor(t, 10*time.Second, 10*time.Millisecond, func() error {
+		if code, body := httpGet(t, readyz); code != 200 {
+			return fmt.Errorf("/readyz after a sample: %d %q", code, body)
+		}
+		if v, _ := gathered(t, r.reg, "surmise_ready", labels); v != 1 {
+			return fmt.Errorf("surmise_ready = %v after a sample", v)
+		}
+		return nil
+	})
 }

@@ -14,7 +14,7 @@ import (
 )
 
 // BandProbability is the probability of the two-sided chi-square band that
-// the windowed mean NIS must stay inside (DESIGN.md §3: "suspect").
+// the windowed mean NIS must stay inside; outside it the status is suspect.
 const BandProbability = 0.95
 
 // EngineOptions are the optional parts of an engine. The zero value is an
@@ -127,7 +127,7 @@ type wire struct {
 	hasRange            bool
 }
 
-// Engine turns samples into estimates, one per tick (DESIGN.md §3). It is
+// Engine turns samples into estimates, one per tick (see Tick). It is
 // pure and deterministic: it starts no goroutines and reads no clock; the
 // time of every sample and tick is passed in, so a live run and a replay of
 // the same samples at the same tick times give the same estimates.
@@ -338,6 +338,13 @@ func (e *Engine) Offer(signal int, value float64, sampleTime, recvTime time.Time
 	if sampleTime.IsZero() || sampleTime.After(recvTime) {
 		sampleTime = recvTime
 	}
+	if signal < e.m && w.maxAge > 0 && recvTime.Sub(sampleTime) > w.maxAge {
+		// An input too old on arrival to be used (it would make every
+		// tick stale-input); an output that old is counted stale at its
+		// tick.
+		e.countRejected(signal, ReasonStale)
+		return ReasonStale, false
+	}
 	smp := sample{value: value, at: sampleTime, recv: recvTime}
 	e.mu.Lock()
 	if e.ticked && !sampleTime.After(e.lastTick) {
@@ -417,7 +424,7 @@ func (e *Engine) applyChanges() {
 }
 
 // Tick runs tick t — the due time given by the scheduler, or replay's virtual
-// clock — and writes its estimate to dst (DESIGN.md §3):
+// clock — and writes its estimate to dst:
 //
 //  1. Inputs: the newest sample with time ≤ t is held. An input whose held
 //     sample is older than its max_age at t, or that was never received

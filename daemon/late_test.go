@@ -85,7 +85,7 @@ func TestLateSampleFusedAtItsTime(t *testing.T) {
 			pl, gf := lateDemo(t, c.maxDelay)
 			const ticks, late = 200, 50
 			feed := newLateFeed(t, pl, 4, ticks)
-			for _, set := range []string{"place-prediction", "kalman-current"} {
+			for _, set := range []string{"poles-prediction", "kalman-current"} {
 				on := NewEngine(pl, engPrepare(t, pl, gf, set), EngineOptions{Candidate: engPrepare(t, pl, gf, "kalman-current")})
 				off := NewEngine(pl, engPrepare(t, pl, gf, set), EngineOptions{Candidate: engPrepare(t, pl, gf, "kalman-current")})
 				a, b := on.NewEstimate(), off.NewEstimate()
@@ -172,7 +172,7 @@ func TestTickPhases(t *testing.T) {
 	feed := newLateFeed(t, pl, 6, 300)
 	for _, phase := range []time.Duration{0, 200 * time.Microsecond, 500 * time.Microsecond, 999 * time.Microsecond,
 		time.Millisecond, 2 * time.Millisecond, 100 * time.Millisecond, 500 * time.Millisecond, 999 * time.Millisecond} {
-		e := NewEngine(pl, engPrepare(t, pl, gf, "place-prediction"), EngineOptions{})
+		e := NewEngine(pl, engPrepare(t, pl, gf, "poles-prediction"), EngineOptions{})
 		est := e.NewEstimate()
 		coasting := 0
 		next := 0 // the next sample to deliver
@@ -205,7 +205,7 @@ func TestTickPhases(t *testing.T) {
 func TestLateTickAllocs(t *testing.T) {
 	pl, gf := lateDemo(t, time.Minute)
 	feed := newLateFeed(t, pl, 4, 400)
-	e := NewEngine(pl, engPrepare(t, pl, gf, "place-prediction"), EngineOptions{Candidate: engPrepare(t, pl, gf, "kalman-current")})
+	e := NewEngine(pl, engPrepare(t, pl, gf, "poles-prediction"), EngineOptions{Candidate: engPrepare(t, pl, gf, "kalman-current")})
 	est := e.NewEstimate()
 	k := 0
 	step := func(late bool) {
@@ -239,7 +239,7 @@ func BenchmarkRerunHour(b *testing.B) {
 	pl, gf := lateDemo(b, time.Hour)
 	const hour = 3600
 	feed := newLateFeed(b, pl, 4, hour+b.N+2)
-	e := NewEngine(pl, engPrepare(b, pl, gf, "place-prediction"), EngineOptions{Candidate: engPrepare(b, pl, gf, "kalman-current")})
+	e := NewEngine(pl, engPrepare(b, pl, gf, "poles-prediction"), EngineOptions{Candidate: engPrepare(b, pl, gf, "kalman-current")})
 	est := e.NewEstimate()
 	// The exchanger's samples all arrive an hour late; each one fills its
 	// tick, so every tick re-runs the hour.
@@ -308,7 +308,7 @@ func TestReplayEqualsEngineWithLateArrivals(t *testing.T) {
 	}
 	sort.SliceStable(arrivals, func(a, b int) bool { return arrivals[a].recv.Before(arrivals[b].recv) })
 
-	prep := engPrepare(t, pl, gf, "place-prediction")
+	prep := engPrepare(t, pl, gf, "poles-prediction")
 	e := NewEngine(pl, prep, EngineOptions{})
 	est := e.NewEstimate()
 	var live []Estimate

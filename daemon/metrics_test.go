@@ -242,7 +242,7 @@ func BenchmarkEstimatorMetricsTick(b *testing.B) {
 }
 
 func TestStatusString(t *testing.T) {
-	// The status names of DESIGN.md §3, used as label values.
+	// The status names (status.go), used as label values.
 	for s, want := range map[Status]string{
 		StatusTracking: "tracking", StatusCoasting: "coasting",
 		StatusStaleInput: "stale-input", StatusSuspect: "suspect", Status(9): "Status(9)",
@@ -265,4 +265,17 @@ func ExampleMetrics_Estimator() {
 	// Each tick (no allocation, no label lookup):
 	e.ObserveTick(StatusTracking, 80*time.Microsecond, 25*time.Microsecond, 0)
 	e.Primary().SetInnovation(0, 0.12, 0.3)
+}
+
+// A fresh estimator reports its start-up load as the latest successful one,
+// so that the refused-reload alert does not fire on every start
+// (deploy/prometheus/rules_test.yml has the matching rule test).
+func TestFreshEstimatorLastReloadSucceeded(t *testing.T) {
+	_, m, _ := newTestMetrics(t)
+	if v := testutil.ToFloat64(m.lastReload.WithLabelValues("loop")); v != 1 {
+		t.Errorf("surmise_gain_last_reload_success of a fresh estimator = %v, want 1", v)
+	}
+	if v := testutil.ToFloat64(m.reloads.WithLabelValues("loop", "refused")); v != 0 {
+		t.Errorf("refused reloads of a fresh estimator = %v, want 0", v)
+	}
 }

@@ -294,8 +294,17 @@ func TestPageInBrowser(t *testing.T) {
 		`.slice(0, 5).map(e => e.tagName + "." + e.className + " " + Math.round(e.getBoundingClientRect().right)).join(", "); })()`); wide != "" {
 		t.Errorf("wider than the %s px window: %s", eval(`String(document.documentElement.clientWidth)`), wide)
 	}
+	// The caution is on the page, and says a status is the estimator's.
+	if c := eval(`(document.querySelector(".caution") || {}).innerText || ""`); !strings.Contains(c, "not a safety function") || !strings.Contains(c, "not a process alarm") {
+		t.Errorf("caution on the page: %q", c)
+	}
+	// With the cursor off the charts, the legends show the latest values,
+	// not rows of dashes.
+	if l := eval(`[...document.querySelectorAll(".u-legend")].map(e => e.innerText).join(" | ")`); !strings.Contains(l, "latest") || strings.Contains(l, "time: —") {
+		t.Errorf("chart legends with the cursor off the charts: %q", l)
+	}
 	gains := eval(`document.getElementById("gains-table").innerText`)
-	for _, want := range []string{"place-prediction", "kalman-current", "innovation RMS, tank_outlet"} {
+	for _, want := range []string{"poles-prediction", "kalman-current", "innovation RMS, tank_outlet"} {
 		if !strings.Contains(gains, want) {
 			t.Errorf("gain sets table lacks %q:\n%s", want, gains)
 		}
@@ -363,8 +372,8 @@ func TestPageInBrowser(t *testing.T) {
 	}
 	poll("the page shows the promotion", `document.getElementById("active-gains").textContent === "kalman-current"`+
 		` && document.getElementById("audit-table").innerText.includes("promote")`)
-	if a := eval(`document.getElementById("audit-table").innerText`); !strings.Contains(a, "place-prediction → kalman-current") {
-		t.Errorf("audit trail does not show the swap from place-prediction to kalman-current:\n%s", a)
+	if a := eval(`document.getElementById("audit-table").innerText`); !strings.Contains(a, "poles-prediction → kalman-current") {
+		t.Errorf("audit trail does not show the swap from poles-prediction to kalman-current:\n%s", a)
 	}
 
 	// 5. The sensors drop out: the estimator coasts, and the page says so.

@@ -1,6 +1,7 @@
 package daemon
 
 import (
+	"errors"
 	"fmt"
 	"sync"
 	"sync/atomic"
@@ -9,12 +10,14 @@ import (
 	"github.com/nats-io/nats.go"
 
 	"surmise/config"
+	"surmise/daemon/lease"
 	"surmise/estimator"
 )
 
-// badSampleLogEvery is the shortest interval between two log lines about
-// refused samples of one signal of one estimator; the refusals in between
-// are counted, and the next line says how many there were.
+// badSampleLogEvery is the default shortest interval between two log lines
+// about refused samples of one signal of one estimator
+// (Options.RefusedLogInterval); the refusals in between are counted and
+// summarised when it is over.
 const badSampleLogEvery = 10 * time.Second
 
 // Estimator is one running estimator of a Daemon: the engine of one plant,
@@ -33,10 +36,15 @@ type Estimator struct {
 	signals []signal // the engine's signals: inputs, then outputs
 
 	gains   atomic.Pointer[config.GainsFile]
+	lease   atomic.Pointer[lease.Lease] // this estimator's, once taken or awaited
 	gainsOK atomic.Bool
 
 	lastTick atomic.Int64 // start of the latest tick (Daemon.now), 0 before the first
-	diverged atomic.Bool  // the latest tick's status is diverged
+	// sampled is set by the first sample the engine accepts: until then
+	// every tick runs on operating-point inputs without a measurement, and
+	// the estimator is not ready.
+	sampled  atomic.Bool
+	diverged atomic.Bool // the latest tick's status is diverged
 
 	// Touched by its ticks only (the ticks of one job never overlap).
 	est       *Estimate
@@ -120,7 +128,9 @@ func (e *Estimator) Subject() string { return e.subject }
 func (e *Estimator) Period() time.Duration { return e.period }
 
 // Pending limits of a signal's subscription: the samples received but not
-// yet handed to the engine. A backlog is only ever a symptom of a process
+// yet handed to the engine. The byte limit is above the largest payload a
+// server lets through by default (1 MiB), so that one long payload reaches
+// DecodeSample and is counted as oversize, not dropped unseen. A backlog is only ever a symptom of a process
 // that cannot keep up, and its samples are mostly too old to be used (only
 // the newest per tick is), so it is kept short: beyond it the client drops
 // samples and reports a slow consumer, instead of the client's defaults
@@ -128,7 +138,7 @@ func (e *Estimator) Period() time.Duration { return e.period }
 // samples are 25 s of a 10 Hz signal, a quarter second of a 1 kHz one.
 const (
 	samplePendingMsgs  = 256
-	samplePendingBytes = 64 << 10
+	samplePendingBytes = 2 << 20
 )
 
 // subscribe makes one subscription per wired signal.
@@ -160,13 +170,17 @@ func (e *Estimator) receive(s *signal, data []byte) {
 	}
 	if r, ok := e.engine.Offer(s.index, v, at, recv); !ok {
 		e.logRefused(s, r, nil)
+	} else if !e.sampled.Load() {
+		e.sampled.Store(true)
 	}
 }
 
-// logRefused logs a refused sample, at most once per badSampleLogEvery for
-// each signal.
+// logRefused logs a refused sample, at most once per
+// Options.RefusedLogInterval for each signal; the refusals in between are
+// summarised by logHeldRefusals.
 func (e *Estimator) logRefused(s *signal, r Reason, err error) {
-	ok, held := s.limit.allow(e.d.now(), int64(badSampleLogEvery))
+	every := e.d.opts.RefusedLogInterval
+	ok, held := s.limit.allow(e.d.now(), int64(every), r)
 	if !ok {
 		return
 	}
@@ -175,9 +189,27 @@ func (e *Estimator) logRefused(s *signal, r Reason, err error) {
 		args = append(args, "error", err)
 	}
 	if held > 0 {
-		args = append(args, "refused_unlogged", held)
+		args = append(args, "refused_before", held)
 	}
 	e.d.log.Warn("sample refused", args...)
+}
+
+// logHeldRefusals logs, for each signal whose refusals were held back and
+// whose interval is over, one line with how many there were and the latest
+// reason; so a burst of refusals is reported even when none follows it. It
+// runs after each tick and allocates nothing when there is nothing to log.
+func (e *Estimator) logHeldRefusals() {
+	every := e.d.opts.RefusedLogInterval
+	now := e.d.now()
+	for i := range e.signals {
+		s := &e.signals[i]
+		held, r := s.limit.due(now, int64(every))
+		if held == 0 {
+			continue
+		}
+		e.d.log.Warn("samples refused", "estimator", e.name, "signal", s.name, "subject", s.subject,
+			"count", held, "within", every.String(), "latest_reason", r.String())
+	}
 }
 
 // tick runs one tick: the engine's estimate, its publication when the bus
@@ -188,22 +220,25 @@ func (e *Estimator) tick(t Tick) {
 	d := e.d
 	e.engine.Tick(t.Due, e.est)
 	e.payload = e.est.AppendJSON(e.payload[:0])
-	connected := d.busConnected()
+	connected := d.busConnected() && e.mayPublish()
 	if connected {
 		// With the reconnect buffer off, Publish fails rather than queue
 		// when the connection dropped since IsConnected: nothing stale is
 		// sent later.
 		if err := d.bus.Conn().Publish(e.subject, e.payload); err == nil {
 			e.observeLatency(time.Now())
+		} else if errors.Is(err, nats.ErrMaxPayload) {
+			d.metrics.BusDropped(DropOversize, 1)
 		}
 	}
 	e.afterTick(connected)
+	e.logHeldRefusals()
 	e.timing = TickTiming{Lateness: t.Lateness, Compute: time.Since(t.Start), Missed: t.Missed}
 	e.metrics.ObserveTick(e.est.Status, e.timing.Lateness, e.timing.Compute, e.timing.Missed)
 	e.lastTick.Store(d.now())
 	diverged := e.est.Status == StatusDiverged
 	e.diverged.Store(diverged)
-	ready := connected && e.gainsOK.Load() && !diverged
+	ready := connected && e.gainsOK.Load() && e.sampled.Load() && !diverged
 	if r := b2i(ready); r != e.lastReady {
 		e.metrics.SetReady(ready)
 		e.lastReady = r
@@ -241,19 +276,36 @@ func b2i(b bool) int8 {
 
 // logLimiter lets one event through per interval and counts the others.
 type logLimiter struct {
-	next atomic.Int64
-	held atomic.Int64
+	next   atomic.Int64
+	held   atomic.Int64
+	reason atomic.Uint32 // the latest held event's Reason
 }
 
 // allow reports whether an event at now (nanoseconds on a monotonic scale)
-// may be logged, and how many were held back since the last one that was.
-func (l *logLimiter) allow(now, every int64) (ok bool, held int64) {
+// may be logged, and how many were held back since the last one that was
+// (none, when due reported them in between).
+func (l *logLimiter) allow(now, every int64, r Reason) (ok bool, held int64) {
 	next := l.next.Load()
 	if now < next || !l.next.CompareAndSwap(next, now+every) {
+		l.reason.Store(uint32(r))
 		l.held.Add(1)
 		return false, 0
 	}
 	return true, l.held.Swap(0)
+}
+
+// due returns how many events were held back, and the latest one's reason,
+// when there are some and the interval that held them is over; it then
+// starts a new interval. Otherwise it returns 0.
+func (l *logLimiter) due(now, every int64) (held int64, r Reason) {
+	if l.held.Load() == 0 {
+		return 0, 0
+	}
+	next := l.next.Load()
+	if now < next || !l.next.CompareAndSwap(next, now+every) {
+		return 0, 0
+	}
+	return l.held.Swap(0), Reason(l.reason.Load())
 }
 
 // EstimateFunc receives the estimates of every estimator of a daemon, on the

@@ -32,24 +32,25 @@ the recording to FILE goes on as well. --export --stream NAME --out FILE
 writes what the stream holds to FILE and exits.`
 
 type recordFlags struct {
-	nats, subjects, out, stream string
-	maxAge, length              time.Duration
-	maxBytes                    int64
-	replicas                    int
-	export                      bool
+	bus                   natsFlags
+	subjects, out, stream string
+	maxAge, length        time.Duration
+	maxBytes              int64
+	replicas              int
+	export                bool
 }
 
 func runRecord(ctx context.Context, e *env, args []string) error {
 	fs := newFlags(e, "record", recordSynopsis)
 	var f recordFlags
-	fs.StringVar(&f.nats, "nats", nats.DefaultURL, "NATS server `URL`")
-	fs.StringVar(&f.subjects, "subjects", "", "comma-separated subject `list` to record, such as pilot.hwl.>,surmise.>")
+	f.bus.register(fs, "NATS server `URL`s, comma-separated (default: this user's newest local daemon, found by its access files, else "+nats.DefaultURL+")")
+	fs.StringVar(&f.subjects, "subjects", "", "the `SUBJECTS` to record, comma-separated, such as pilot.hwl.>,surmise.>")
 	fs.StringVar(&f.out, "out", "", "the recording `FILE` (appended to)")
-	fs.DurationVar(&f.length, "for", 0, "stop after this `duration` (default: until interrupted)")
-	fs.StringVar(&f.stream, "stream", "", "JetStream stream `name` that records the subjects on the server")
-	fs.DurationVar(&f.maxAge, "max-age", 0, "the stream keeps messages for at most this `duration`")
-	fs.Int64Var(&f.maxBytes, "max-bytes", 0, "the stream keeps at most this many `bytes`")
-	fs.IntVar(&f.replicas, "replicas", 1, "copies of the stream in a cluster")
+	fs.DurationVar(&f.length, "for", 0, "stop after this `DURATION`, such as 20s (default: until interrupted)")
+	fs.StringVar(&f.stream, "stream", "", "JetStream stream `NAME` that records the subjects on the server")
+	fs.DurationVar(&f.maxAge, "max-age", 0, "the stream keeps messages for at most this `DURATION` (default: no limit)")
+	fs.Int64Var(&f.maxBytes, "max-bytes", 0, "the stream keeps at most this many `BYTES` (default: no limit)")
+	fs.IntVar(&f.replicas, "replicas", 1, "`N` copies of the stream in a cluster")
 	fs.BoolVar(&f.export, "export", false, "write what --stream holds to --out and exit")
 	pos, err := parseArgs(fs, args)
 	if err != nil {
@@ -85,9 +86,9 @@ func runRecord(ctx context.Context, e *env, args []string) error {
 			return usageError("--subjects: %v", err)
 		}
 	}
-	nc, err := nats.Connect(f.nats, nats.Name("surmise-record"), nats.MaxReconnects(-1))
+	nc, err := f.bus.dial(5*time.Second, nil, nats.Name("surmise-record"), nats.MaxReconnects(-1))
 	if err != nil {
-		return fmt.Errorf("connecting to %s: %w (is a server running? 'surmise run' and 'surmise demo' start one)", f.nats, err)
+		return err
 	}
 	defer nc.Close()
 
@@ -139,7 +140,11 @@ func runRecord(ctx context.Context, e *env, args []string) error {
 	if err != nil {
 		return err
 	}
-	fmt.Fprintf(e.stdout, "recording %s from %s to %s; interrupt to stop\n", strings.Join(subjects, ","), nc.ConnectedUrlRedacted(), f.out)
+	until := "until interrupted (Ctrl-C)"
+	if f.length > 0 {
+		until = fmt.Sprintf("for %v (Ctrl-C stops it sooner)", f.length)
+	}
+	fmt.Fprintf(e.stdout, "recording %s from %s to %s %s\n", strings.Join(subjects, ","), nc.ConnectedUrlRedacted(), f.out, until)
 	var timeout <-chan time.Time
 	if f.length > 0 {
 		t := time.NewTimer(f.length)

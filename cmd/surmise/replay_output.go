@@ -227,8 +227,12 @@ func writeReplaySummary(w io.Writer, plant *config.Plant, src *daemon.ReplaySour
 		if s.Diverged > 0 {
 			fmt.Fprintf(w, "  diverged    %s of the ticks\n", pct(s.Diverged))
 		}
-		fmt.Fprintf(w, "  NIS         mean %s over %d ticks (%s outputs on average), %.1f %% inside the 95 %% band; outliers rejected %d\n",
-			fnum(s.MeanNIS), s.NISTicks, fnum(s.MeanDof), 100*s.NISInBand, s.Outliers)
+		if s.NISTicks == 0 {
+			fmt.Fprintf(w, "  NIS         none: this gain set has no innovation covariance S, so no NIS and no outlier gate\n")
+		} else {
+			fmt.Fprintf(w, "  NIS         mean %s over %d ticks (%s outputs on average), %.1f %% inside the 95 %% band; outliers rejected %d\n",
+				fnum(s.MeanNIS), s.NISTicks, fnum(s.MeanDof), 100*s.NISInBand, s.Outliers)
+		}
 		for _, o := range s.Outputs {
 			white := "white"
 			switch {
