@@ -55,14 +55,7 @@ func honestDraw(t testing.TB, pl *config.Plant, seed uint64) []float64 {
 // truth lay within two published standard deviations of the estimate.
 func honestRun(t testing.TB, set string, seeds []uint64, ticks int) honestFigures {
 	t.Helper()
-	pl, err := config.LoadPlant("../testdata/plants/hotwater-loop.yaml")
-	if err != nil {
-		t.Fatal(err)
-	}
-	gf, err := config.LoadGains(pl.GainsPath, pl)
-	if err != nil {
-		t.Fatal(err)
-	}
+	pl, gf := lateDemo(t, 0)
 	md := pl.Model
 	n, _, p := md.Dims()
 	fig := honestFigures{inside: make([]int, n)}
@@ -160,14 +153,7 @@ func TestMeasureDrawnStarts(t *testing.T) {
 // estimator.GateRelease refusals the filter inflates its covariance and
 // corrects again, and keeps correcting.
 func TestGateCannotLockOut(t *testing.T) {
-	pl, err := config.LoadPlant("../testdata/plants/hotwater-loop.yaml")
-	if err != nil {
-		t.Fatal(err)
-	}
-	gf, err := config.LoadGains(pl.GainsPath, pl)
-	if err != nil {
-		t.Fatal(err)
-	}
+	pl, gf := lateDemo(t, 0)
 	for _, set := range []string{"poles-prediction", "kalman-current"} {
 		t.Run(set, func(t *testing.T) {
 			md := pl.Model
@@ -277,10 +263,7 @@ func checkDiverged(t *testing.T, est *Estimate, why string) {
 // Each is diverged, without numbers, for DivergedHold ticks, then
 // re-initialised from the plant's initial condition and tracking again.
 func TestDivergence(t *testing.T) {
-	pl, err := config.LoadPlant("../testdata/plants/hotwater-loop.yaml")
-	if err != nil {
-		t.Fatal(err)
-	}
+	pl, _ := lateDemo(t, 0)
 	for _, c := range []struct {
 		name, why string
 		element   float64

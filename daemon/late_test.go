@@ -40,6 +40,9 @@ func newLateFeed(t testing.TB, pl *config.Plant, seed uint64, ticks int) *lateFe
 	return f
 }
 
+// lateDemo loads the demo plant (the continuous hot-water loop, as surmise
+// demo runs it) and its gains file; with maxDelay > 0, every signal gets that
+// max_delay (and the outputs a max_age that lets such samples be used).
 func lateDemo(t testing.TB, maxDelay time.Duration) (*config.Plant, *config.GainsFile) {
 	t.Helper()
 	pl, err := config.LoadPlant("../testdata/plants/hotwater-loop.yaml")
