@@ -156,6 +156,7 @@ func startDaemon(t testing.TB, opts daemon.Options) *running {
 	select {
 	case r.ep = <-started:
 	case err := <-done:
+		once.Do(func() {}) // Run has returned: nothing to stop
 		t.Fatalf("Run returned before starting: %v", err)
 	case <-time.After(20 * time.Second):
 		t.Fatal("the daemon did not start in 20 s")
