@@ -37,6 +37,10 @@ const stopDrainTimeout = 500 * time.Millisecond
 type PlantSpec struct {
 	Plant *config.Plant
 	Gains *config.GainsFile
+	// GainsBytes, when not nil, are the bytes Gains was parsed from, for
+	// gains that are not in the file the plant names (built into the
+	// program, say): their SHA-256 is what a status reports as in effect.
+	GainsBytes []byte
 }
 
 // EstimateSubject returns the subject the estimates of plant are published
@@ -666,6 +670,9 @@ func (d *Daemon) missing() []string {
 		}
 		if e.lastTick.Load() == 0 {
 			m = append(m, "estimator "+e.name+": no tick yet")
+		}
+		if !e.sampled.Load() {
+			m = append(m, "estimator "+e.name+": no sample received yet on its wired subjects (every tick so far ran without inputs or measurements)")
 		}
 	}
 	return m

@@ -40,6 +40,10 @@ type Estimator struct {
 	gainsOK atomic.Bool
 
 	lastTick atomic.Int64 // start of the latest tick (Daemon.now), 0 before the first
+	// sampled is set by the first sample the engine accepts: until then
+	// every tick runs on operating-point inputs without a measurement, and
+	// the estimator is not ready.
+	sampled atomic.Bool
 
 	// Touched by its ticks only (the ticks of one job never overlap).
 	est       *Estimate
@@ -165,6 +169,8 @@ func (e *Estimator) receive(s *signal, data []byte) {
 	}
 	if r, ok := e.engine.Offer(s.index, v, at, recv); !ok {
 		e.logRefused(s, r, nil)
+	} else if !e.sampled.Load() {
+		e.sampled.Store(true)
 	}
 }
 
@@ -229,7 +235,7 @@ func (e *Estimator) tick(t Tick) {
 	e.timing = TickTiming{Lateness: t.Lateness, Compute: time.Since(t.Start), Missed: t.Missed}
 	e.metrics.ObserveTick(e.est.Status, e.timing.Lateness, e.timing.Compute, e.timing.Missed)
 	e.lastTick.Store(d.now())
-	ready := connected && e.gainsOK.Load()
+	ready := connected && e.gainsOK.Load() && e.sampled.Load()
 	if r := b2i(ready); r != e.lastReady {
 		e.metrics.SetReady(ready)
 		e.lastReady = r

@@ -231,7 +231,7 @@ func TestCtlEndToEnd(t *testing.T) {
 	}{
 		{[]string{"cart", "promote"}, "cart promote refused (409): no candidate gain set runs in shadow"},
 		{[]string{"cart", "reset", "--state", "speed=1"}, `refused (400): reset refused`},
-		{[]string{"cart", "load", plantPathFor(c, "cart.yaml")}, "refused (422)"},
+		{[]string{"cart", "load", plantPathFor(c, "cart.yaml")}, "refused (422): gains file " + plantPathFor(c, "cart.yaml") + " (sent over the bus) refused\n  " + plantPathFor(c, "cart.yaml") + ":"},
 		{[]string{"trolley", "status"}, "no daemon answers on surmise.control.trolley.status"},
 	} {
 		_, errOut, code := c.ctl(t, r.args...)

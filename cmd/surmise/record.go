@@ -140,7 +140,11 @@ func runRecord(ctx context.Context, e *env, args []string) error {
 	if err != nil {
 		return err
 	}
-	fmt.Fprintf(e.stdout, "recording %s from %s to %s; interrupt to stop\n", strings.Join(subjects, ","), nc.ConnectedUrlRedacted(), f.out)
+	until := "until interrupted (Ctrl-C)"
+	if f.length > 0 {
+		until = fmt.Sprintf("for %v (Ctrl-C stops it sooner)", f.length)
+	}
+	fmt.Fprintf(e.stdout, "recording %s from %s to %s %s\n", strings.Join(subjects, ","), nc.ConnectedUrlRedacted(), f.out, until)
 	var timeout <-chan time.Time
 	if f.length > 0 {
 		t := time.NewTimer(f.length)

@@ -143,9 +143,10 @@ func runSimulate(ctx context.Context, e *env, args []string) error {
 	describeSimulation(e, plant, sc, f.seed, f.speed, f.prefix)
 	fmt.Fprintf(e.stdout, "publishing invented values to %s", nc.ConnectedUrlRedacted())
 	if f.length > 0 {
-		fmt.Fprintf(e.stdout, " for %v of plant time", f.length)
+		fmt.Fprintf(e.stdout, " for %v of plant time (Ctrl-C stops it sooner)\n", f.length)
+	} else {
+		fmt.Fprintln(e.stdout, " until interrupted (Ctrl-C)")
 	}
-	fmt.Fprintln(e.stdout, "; interrupt to stop")
 	stats, err := simplant.Publish(ctx, nc, simplant.NewStream(sim), simplant.PublishOptions{
 		Clock:  simplant.Clock{Speed: f.speed},
 		For:    f.length,
