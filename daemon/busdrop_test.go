@@ -1,11 +1,9 @@
 package daemon
 
 import (
-	"bytes"
 	"fmt"
 	"log/slog"
 	"strings"
-	"sync"
 	"testing"
 	"time"
 
@@ -14,24 +12,6 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/testutil"
 )
-
-// lockedBuffer is a log destination safe for the client's goroutines.
-type lockedBuffer struct {
-	mu sync.Mutex
-	b  bytes.Buffer
-}
-
-func (l *lockedBuffer) Write(p []byte) (int, error) {
-	l.mu.Lock()
-	defer l.mu.Unlock()
-	return l.b.Write(p)
-}
-
-func (l *lockedBuffer) String() string {
-	l.mu.Lock()
-	defer l.mu.Unlock()
-	return l.b.String()
-}
 
 // A subscriber that cannot keep up: what its pending limits drop is
 // counted (pending-limit), exactly as many as the client dropped, and the
@@ -43,7 +23,7 @@ func TestBusCountsDropsAndLimitsWarnings(t *testing.T) {
 	defer ns.Shutdown()
 	reg := prometheus.NewPedanticRegistry()
 	m := NewMetrics(reg)
-	var logged lockedBuffer
+	var logged cmLog // reload_test.go
 	b, err := Connect(BusOptions{URL: ns.ClientURL()}, m, slog.New(slog.NewTextHandler(&logged, nil)))
 	if err != nil {
 		t.Fatal(err)
