@@ -8,9 +8,9 @@ import (
 	"gonum.org/v1/gonum/mat"
 )
 
-// DefaultALSLags is the number of autocovariance lags (0 to 14) IdentifyNoise
+// DefaultALSLags is the number of autocovariance lags (0 to 29) IdentifyNoise
 // fits when ALSSettings.Lags is zero.
-const DefaultALSLags = 15
+const DefaultALSLags = 30
 
 // DefaultALSSegments is the number of disjoint segments whose separate
 // estimates give the uncertainty of each element when ALSSettings.Segments
