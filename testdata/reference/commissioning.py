@@ -15,7 +15,9 @@ Rerun from the repository root:  /usr/bin/python3 testdata/reference/commissioni
    (vec P = (I - Abar kron Abar)^-1 vec(Q + L R L')), by numpy.linalg.lstsq, unconstrained.
 3. cusum: the in-control and shifted average run lengths of the two-sided tabular CUSUM with
    k = 0.5, h = 4 and h = 5, by the Markov chain of Brook and Evans (Biometrika 59(3), 1972),
-   one-sided chains combined as 1/ARL = 1/ARL+ + 1/ARL-, and by Siegmund's approximation.
+   one-sided chains combined as 1/ARL = 1/ARL+ + 1/ARL-, and by Siegmund's approximation; and
+   the same chain for the CUSUM Surmise runs, whose normalised innovation is first limited to
+   [-3, 3] so that a lone spike cannot raise an alarm (arl_markov_clip3).
 """
 import json
 import numpy as np
@@ -120,8 +122,10 @@ def als_section():
     return out
 
 
-def cusum_arl_markov(h, k, shift, one_sided_upper=True, m=400):
-    """Brook and Evans: the CUSUM C+ = max(0, C + z - k) on [0, h) discretised in m states."""
+def cusum_arl_markov(h, k, shift, one_sided_upper=True, m=400, clip=None):
+    """Brook and Evans: the CUSUM C+ = max(0, C + z - k) on [0, h) discretised in m states.
+    With clip, z is first limited to [-clip, clip] (the increment's distribution gets point
+    masses at the ends)."""
     w = 2.0 * h / (2 * m - 1)  # state 0 is C = 0; state i (i>=1) is centred at i*w
     centres = np.arange(m) * w
     mu = shift if one_sided_upper else -shift
@@ -129,10 +133,19 @@ def cusum_arl_markov(h, k, shift, one_sided_upper=True, m=400):
     for i, c in enumerate(centres):
         # next = max(0, c + z - k); state 0 collects next <= w/2
         base = c - k + mu
-        Pm[i, 0] = stats.norm.cdf(w / 2 - base)
+
+        def cdf(a):
+            # P(c - k + clip(z + mu) <= a + base - mu ... ) written for the increment z + mu
+            v = stats.norm.cdf(a)
+            if clip is not None:
+                # z + mu is clipped to [-clip, clip]: P(clipped <= t) is 0 below -clip, 1 at or above clip
+                t = a + mu
+                v = np.where(t < -clip, 0.0, np.where(t >= clip, 1.0, v))
+            return v
+        Pm[i, 0] = cdf(w / 2 - base)
         upper = (np.arange(1, m) + 0.5) * w - base
         lower = (np.arange(1, m) - 0.5) * w - base
-        Pm[i, 1:] = stats.norm.cdf(upper) - stats.norm.cdf(lower)
+        Pm[i, 1:] = cdf(upper) - cdf(lower)
     arl = np.linalg.solve(np.eye(m) - Pm, np.ones(m))
     return float(arl[0])
 
@@ -153,8 +166,11 @@ def cusum_section():
             dn = cusum_arl_markov(h, 0.5, shift, False)
             two = 1.0 / (1.0 / up + 1.0 / dn)
             su, sd = siegmund(h, 0.5, shift), siegmund(h, 0.5, -shift)
+            cu = cusum_arl_markov(h, 0.5, shift, True, clip=3.0)
+            cd = cusum_arl_markov(h, 0.5, shift, False, clip=3.0)
             rows.append({"h": h, "k": 0.5, "shift": shift, "arl_markov": two,
-                         "arl_siegmund": float(1.0 / (1.0 / su + 1.0 / sd))})
+                         "arl_siegmund": float(1.0 / (1.0 / su + 1.0 / sd)),
+                         "arl_markov_clip3": 1.0 / (1.0 / cu + 1.0 / cd)})
     return rows
 
 
