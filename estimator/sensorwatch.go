@@ -67,7 +67,7 @@ type SensorWatchSettings struct {
 // SensorState is what a SensorWatch says of one output after a tick.
 type SensorState struct {
 	// CUSUMHigh and CUSUMLow are the upper and lower CUSUM statistics, in
-	// standard deviations (both ≥ 0, held at most 2·H).
+	// standard deviations (both ≥ 0, held at most 1.5·H).
 	CUSUMHigh, CUSUMLow float64
 	// Bias is +1 while CUSUMHigh exceeds H (the measurement reads high
 	// against the model), −1 while CUSUMLow does, 0 otherwise.
@@ -102,6 +102,7 @@ type SensorWatch struct {
 	set     SensorWatchSettings
 	state   []SensorState
 	last    []float64   // the last measured value
+	lastStd []float64   // the last std given, for samples given without one
 	sq      [][]float64 // ring of squared normalised innovations
 	sqHead  []int
 	sqN     []int
@@ -136,13 +137,14 @@ func NewSensorWatch(p int, set SensorWatchSettings) *SensorWatch {
 	defi(&set.StuckWindow, DefaultStuckWindow)
 	defi(&set.LockoutTicks, DefaultLockoutTicks)
 	defi(&set.DropoutWindow, DefaultDropoutWindow)
-	w := &SensorWatch{set: set, state: make([]SensorState, p), last: make([]float64, p),
+	w := &SensorWatch{set: set, state: make([]SensorState, p), last: make([]float64, p), lastStd: make([]float64, p),
 		sq: make([][]float64, p), sqHead: make([]int, p), sqN: make([]int, p), sqSum: make([]float64, p),
 		miss: make([][]bool, p), missAt: make([]int, p), missN: make([]int, p), missCnt: make([]int, p)}
 	for j := range w.sq {
 		w.sq[j] = make([]float64, set.StuckWindow)
 		w.miss[j] = make([]bool, set.DropoutWindow)
 		w.last[j] = math.NaN()
+		w.lastStd[j] = math.NaN()
 		w.state[j].MeanSquare = math.NaN()
 	}
 	return w
@@ -156,6 +158,7 @@ func (w *SensorWatch) Reset() {
 	for j := range w.state {
 		w.state[j] = SensorState{MeanSquare: math.NaN()}
 		w.last[j] = math.NaN()
+		w.lastStd[j] = math.NaN()
 		w.sqHead[j], w.sqN[j], w.sqSum[j] = 0, 0, 0
 		w.missAt[j], w.missN[j], w.missCnt[j] = 0, 0, 0
 	}
@@ -167,7 +170,9 @@ func (w *SensorWatch) State(j int) *SensorState { return &w.state[j] }
 // Update feeds output j's tick: measured is the sample the tick took (NaN
 // when it had none), innovation and std the innovation and its claimed
 // standard deviation √S (either NaN when the filter did not compute them),
-// rejected whether the gate refused the sample. The CUSUM takes the
+// rejected whether the gate refused the sample. A NaN std takes the last
+// one given for the output: a filter need not report S for a sample it
+// refused. The CUSUM takes the
 // normalised innovation z = innovation/std of every sample, limited to
 // ±CUSUMClip — a refused one too when the sample before it was refused as
 // well, since a large bias is exactly what the gate refuses, while a lone
@@ -215,16 +220,21 @@ func (w *SensorWatch) Update(j int, measured, innovation, std float64, rejected 
 	}
 	w.last[j] = measured
 
+	if std > 0 {
+		w.lastStd[j] = std
+	} else if math.IsNaN(std) {
+		std = w.lastStd[j]
+	}
 	z := innovation / std
 	// A lone refused sample is a spike, not evidence of a bias: the CUSUM
 	// takes a refused sample only when the one before was refused too.
 	if !math.IsNaN(z) && (!rejected || prevRejected) {
-		// Two-sided tabular CUSUM, held at 2·H so that an alarm clears
-		// within about H/K ticks after the bias goes.
+		// Two-sided tabular CUSUM, held at 1.5·H so that an alarm clears
+		// within about H/(2·K) ticks after the bias goes.
 		zc := math.Max(-CUSUMClip, math.Min(CUSUMClip, z))
 		h, k := w.set.H, w.set.K
-		st.CUSUMHigh = math.Min(math.Max(0, st.CUSUMHigh+zc-k), 2*h)
-		st.CUSUMLow = math.Min(math.Max(0, st.CUSUMLow-zc-k), 2*h)
+		st.CUSUMHigh = math.Min(math.Max(0, st.CUSUMHigh+zc-k), 1.5*h)
+		st.CUSUMLow = math.Min(math.Max(0, st.CUSUMLow-zc-k), 1.5*h)
 		bias := 0
 		switch {
 		case st.CUSUMHigh > h && st.CUSUMHigh >= st.CUSUMLow:

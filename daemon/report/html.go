@@ -55,8 +55,8 @@ type page struct {
 	HasStateStd   bool
 	Buckets       int
 	Colspan       int
-	MaxOutside    int
 	Lags          int
+	Level         string
 }
 
 type runView struct {
@@ -108,6 +108,26 @@ func count(n, of int) string {
 	return fmt.Sprintf("%d (%.1f %%)", n, 100*float64(n)/float64(of))
 }
 
+// pval formats a p-value: small ones in scientific notation.
+func pval(p float64) string {
+	if p < 1e-3 && p > 0 {
+		return strconv.FormatFloat(p, 'e', 1, 64)
+	}
+	return num(p)
+}
+
+// faultText lists fault episodes as "bias, reads high 45 s–65 s", times
+// from the start of the run.
+func faultText(eps []FaultEpisode, t0 time.Time) string {
+	parts := make([]string, 0, len(eps))
+	for _, e := range eps {
+		parts = append(parts, fmt.Sprintf("%s %s–%s", FaultName(e.Kind), shortDur(e.Start.Sub(t0)), shortDur(e.End.Sub(t0))))
+	}
+	return strings.Join(parts, "; ")
+}
+
+func shortDur(d time.Duration) string { return d.Round(time.Second).String() }
+
 func withUnit(name, unit string) string {
 	if unit == "" {
 		return name
@@ -137,15 +157,15 @@ func buildPage(in *Input) (*page, error) {
 	}
 	pg := &page{
 		Plant: in.Plant, Source: in.Source,
-		Start:      t0.Format("2006-01-02 15:04:05.000 MST"),
-		End:        t1.Format("2006-01-02 15:04:05.000 MST"),
-		Duration:   t1.Sub(t0).Round(time.Millisecond).String(),
-		Ticks:      strconv.Itoa(total),
-		HasTruth:   in.Truth != nil,
-		Buckets:    Buckets,
-		Colspan:    len(in.Runs) + 2,
-		MaxOutside: MaxOutside,
-		Lags:       Lags,
+		Start:    t0.Format("2006-01-02 15:04:05.000 MST"),
+		End:      t1.Format("2006-01-02 15:04:05.000 MST"),
+		Duration: t1.Sub(t0).Round(time.Millisecond).String(),
+		Ticks:    strconv.Itoa(total),
+		HasTruth: in.Truth != nil,
+		Buckets:  Buckets,
+		Colspan:  len(in.Runs) + 2,
+		Lags:     Lags,
+		Level:    strconv.FormatFloat(WhitenessLevel, 'g', -1, 64),
 	}
 	for i, r := range in.Runs {
 		fp := r.Fingerprint
@@ -213,7 +233,24 @@ func tableSections(in *Input, sums []Summary) []tableSection {
 			return tableCell{Text: pct(s.WindowsInBand), Warn: s.WindowsInBand < 0.9}
 		}),
 	)
-	out := []tableSection{ticks, nis}
+	var out []tableSection
+	if in.Truth != nil {
+		// What matters most when the truth is known: the error and whether
+		// the claimed σ covers it — first.
+		truth := tableSection{Title: "Against the true states: error RMS · share of ticks with |error| ≤ 2σ"}
+		for i, name := range in.StateNames {
+			truth.Rows = append(truth.Rows, row(withUnit(name, unitOf(in.StateUnits, i)), "· 95 %", func(s *Summary) tableCell {
+				st := s.States[i]
+				txt := num(st.RMS)
+				if st.CoverageN > 0 {
+					txt += " · " + pct(st.Coverage)
+				}
+				return tableCell{Text: txt, Warn: st.CoverageN > 0 && st.Coverage < 0.9}
+			}))
+		}
+		out = append(out, truth)
+	}
+	out = append(out, ticks, nis)
 	for j, name := range in.OutputNames {
 		unit := unitOf(in.OutputUnits, j)
 		sec := tableSection{Title: "Innovation of " + withUnit(name, unit)}
@@ -221,7 +258,7 @@ func tableSections(in *Input, sums []Summary) []tableSection {
 			row("values", "", plain(func(s *Summary) string { return strconv.Itoa(s.Outputs[j].N) })),
 			row("mean", "0", plain(func(s *Summary) string { return num(s.Outputs[j].Mean) })),
 			row("RMS", "", plain(func(s *Summary) string { return num(s.Outputs[j].RMS) })),
-			row(fmt.Sprintf("lags 1–%d outside ±1.96/√N", Lags), fmt.Sprintf("≤ %d", MaxOutside), func(s *Summary) tableCell {
+			row(fmt.Sprintf("Ljung–Box Q over lags 1–%d, p-value", Lags), fmt.Sprintf("p ≥ %g", WhitenessLevel), func(s *Summary) tableCell {
 				o := s.Outputs[j]
 				if o.Autocorr == nil {
 					return tableCell{Text: "—"}
@@ -230,7 +267,15 @@ func tableSections(in *Input, sums []Summary) []tableSection {
 				if !o.White {
 					verdict = "not white"
 				}
-				return tableCell{Text: fmt.Sprintf("%d (%s)", o.Outside, verdict), Warn: !o.White}
+				return tableCell{Text: fmt.Sprintf("Q %s, p %s (%s)", num(o.LjungBox), pval(o.P), verdict), Warn: !o.White}
+			}),
+			row("ticks without a sample", "", plain(func(s *Summary) string { return pct(s.Outputs[j].Dropout) })),
+			row("sensor faults", "none", func(s *Summary) tableCell {
+				o := s.Outputs[j]
+				if o.Faults == nil {
+					return tableCell{Text: "none"}
+				}
+				return tableCell{Text: faultText(o.Faults, s.Start), Warn: true}
 			}),
 		)
 		r := row("ρ(1), …, ρ(10)", "", plain(func(s *Summary) string {
@@ -411,7 +456,7 @@ figure svg { display: block; width: 100%; height: auto; }
 {{range .Rows}}<tr><td class="label">{{.Label}}</td><td class="exp">{{.Expected}}</td>{{$small := .Small}}{{range .Cells}}<td class="{{if .Warn}}warn{{else if $small}}small{{end}}">{{.Text}}</td>{{end}}</tr>
 {{end}}</tbody>
 {{end}}</table>
-<p class="note">Expected values are those of a consistent filter: a NIS inside its two-sided 95 % chi-square band on 95 % of ticks, a mean NIS equal to the mean number of outputs (dof), white innovations (at most {{.MaxOutside}} of {{.Lags}} autocorrelation lags outside ±1.96/√N). Highlighted cells fall short of that.</p>
+<p class="note">Expected values are those of a consistent filter: a NIS inside its two-sided 95 % chi-square band on 95 % of ticks, a mean NIS equal to the mean number of outputs (dof), white innovations (the Ljung–Box test over lags 1–{{.Lags}}: a p-value of at least {{.Level}}; Ljung and Box, Biometrika 65(2), 1978), no sensor fault (a bias from a two-sided CUSUM of the normalised innovation, k = 0.5, h = 5; a stuck value; a gate lock-out){{if .HasTruth}}, and an error within ±2σ on 95 % of ticks{{end}}. Highlighted cells fall short of that.</p>
 
 <h2>Innovations</h2>
 <div class="legend">{{range .Runs}}<span><span class="chip" style="background:{{.Color}}"></span>{{.Gains}}</span>{{end}}<span><span class="chip" style="background:#445"></span>±2√S claimed by each gain set (darker line)</span></div>
