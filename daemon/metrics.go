@@ -128,7 +128,7 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 		sensorBias: gauge("surmise_sensor_bias",
 			"+1 while the CUSUM of the output's normalised innovation signals that the sensor reads high against the model, -1 low, 0 otherwise.", labelEstimator, labelGains, labelOutput),
 		sensorCUSUM: gauge("surmise_sensor_cusum",
-			"The larger of the two-sided CUSUM statistics of the output's normalised innovation, in standard deviations (alarm above 5).", labelEstimator, labelGains, labelOutput),
+			"The larger of the two-sided CUSUM statistics of the output's normalised innovation, in standard deviations (alarm above 10).", labelEstimator, labelGains, labelOutput),
 		biasAlarms: counter("surmise_sensor_bias_alarms_total",
 			"Bias alarms raised by the CUSUM of the output's normalised innovation.", labelEstimator, labelGains, labelOutput),
 		sensorStuck: gauge("surmise_sensor_stuck",

@@ -288,16 +288,17 @@ func TestSensorWatchARL(t *testing.T) {
 	// 168 in control, 8.38 at a one-σ shift; h = 5: 465 and 10.4), and the
 	// Markov chain of Brook and Evans computed by commissioning.py (167.7,
 	// 8.38; 465.4, 10.38). Our CUSUM limits its input to ±CUSUMClip, which
-	// the same chain computes too (173.2, 8.47; 486.9, 10.49): the watch's
+	// the same chain computes too (173.2, 8.47; 486.9, 10.49; and for the
+	// default h = 10 at one σ, 20.66): the watch's
 	// simulated ARL is checked against that. The simulated mean of R run
 	// lengths has a standard error of about ARL/√R (near geometric).
 	table := map[[2]float64]float64{{4, 0}: 168, {4, 1}: 8.38, {5, 0}: 465, {5, 1}: 10.4}
 	rng := rand.New(rand.NewPCG(5, 9))
 	for _, c := range loadCommissioning(t).CUSUM {
-		if c.Shift != 0 && c.Shift != 1 {
-			continue
+		if (c.Shift != 0 && c.Shift != 1) || (c.H == DefaultCUSUMH && c.Shift == 0) {
+			continue // the default's in-control ARL (78,000 ticks) is too long to simulate here
 		}
-		if book, ok := table[[2]float64{c.H, c.Shift}]; !ok || math.Abs(book-c.ARLMarkov) > 0.01*book {
+		if book, ok := table[[2]float64{c.H, c.Shift}]; ok && math.Abs(book-c.ARLMarkov) > 0.01*book {
 			t.Errorf("h=%v δ=%v: Markov chain %v, table %v", c.H, c.Shift, c.ARLMarkov, book)
 		}
 		w := NewSensorWatch(1, SensorWatchSettings{K: c.K, H: c.H, StuckRepeats: math.MaxInt})

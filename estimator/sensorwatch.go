@@ -7,25 +7,28 @@ import (
 
 // CUSUM defaults: the reference value k and decision interval h of the
 // two-sided tabular CUSUM on a normalised innovation, in standard
-// deviations. k = 0.5 tunes it to a shift of one standard deviation; with
-// h = 5 a filter whose innovations are consistent raises a false alarm
-// every 465 ticks per output on average, and a bias of one standard
-// deviation is flagged after about 10 ticks (Montgomery, Introduction to
-// Statistical Quality Control, the ARL table of the tabular CUSUM with
-// k = 1/2, from memory; recomputed by the Markov chain of Brook and Evans
-// in testdata/reference/commissioning.py and checked by simulation in the
-// tests).
+// deviations. k = 0.5 tunes it to a shift of one standard deviation. The
+// textbook rows h = 4 and h = 5 (Montgomery, Introduction to Statistical
+// Quality Control, the ARL table of the tabular CUSUM with k = 1/2, from
+// memory: in-control ARLs 168 and 465) raise a false alarm every few
+// minutes per output at a 1 s tick; h = 10 raises one every 78,000 ticks
+// per output on average (about 22 hours at 1 s) and still flags a bias of
+// one standard deviation after about 21 ticks, of three after about 5.
+// The ARLs are computed by the Markov chain of Brook and Evans in
+// testdata/reference/commissioning.py and checked by simulation in the
+// tests.
 const (
 	DefaultCUSUMK = 0.5
-	DefaultCUSUMH = 5.0
+	DefaultCUSUMH = 10.0
 )
 
 // CUSUMClip limits the normalised innovation the CUSUM takes to
 // [−CUSUMClip, CUSUMClip], so that one wild value adds at most
 // CUSUMClip − K and cannot raise an alarm on its own, while a bias of many
-// standard deviations still does within a few ticks. It raises
-// the in-control ARL of h = 5 from 465 to 487 and the one-σ ARL from 10.38
-// to 10.49 (the Markov chain of testdata/reference/commissioning.py).
+// standard deviations still does within a few ticks. It raises the
+// in-control ARL of h = 5 from 465 to 487, of h = 10 from 70,100 to
+// 78,200, and the one-σ ARLs from 10.38 to 10.49 and 20.37 to 20.66 (the
+// Markov chain of testdata/reference/commissioning.py).
 const CUSUMClip = 3.0
 
 // Sensor-watch defaults.
@@ -229,12 +232,13 @@ func (w *SensorWatch) Update(j int, measured, innovation, std float64, rejected 
 	// A lone refused sample is a spike, not evidence of a bias: the CUSUM
 	// takes a refused sample only when the one before was refused too.
 	if !math.IsNaN(z) && (!rejected || prevRejected) {
-		// Two-sided tabular CUSUM, held at 1.5·H so that an alarm clears
-		// within about H/(2·K) ticks after the bias goes.
+		// Two-sided tabular CUSUM, held at H + 2 so that an alarm clears
+		// within a few ticks after the bias goes, and a bias of one σ or
+		// more hardly ever dips below H while it lasts.
 		zc := math.Max(-CUSUMClip, math.Min(CUSUMClip, z))
 		h, k := w.set.H, w.set.K
-		st.CUSUMHigh = math.Min(math.Max(0, st.CUSUMHigh+zc-k), 1.5*h)
-		st.CUSUMLow = math.Min(math.Max(0, st.CUSUMLow-zc-k), 1.5*h)
+		st.CUSUMHigh = math.Min(math.Max(0, st.CUSUMHigh+zc-k), h+2)
+		st.CUSUMLow = math.Min(math.Max(0, st.CUSUMLow-zc-k), h+2)
 		bias := 0
 		switch {
 		case st.CUSUMHigh > h && st.CUSUMHigh >= st.CUSUMLow:

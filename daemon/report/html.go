@@ -456,7 +456,7 @@ figure svg { display: block; width: 100%; height: auto; }
 {{range .Rows}}<tr><td class="label">{{.Label}}</td><td class="exp">{{.Expected}}</td>{{$small := .Small}}{{range .Cells}}<td class="{{if .Warn}}warn{{else if $small}}small{{end}}">{{.Text}}</td>{{end}}</tr>
 {{end}}</tbody>
 {{end}}</table>
-<p class="note">Expected values are those of a consistent filter: a NIS inside its two-sided 95 % chi-square band on 95 % of ticks, a mean NIS equal to the mean number of outputs (dof), white innovations (the Ljung–Box test over lags 1–{{.Lags}}: a p-value of at least {{.Level}}; Ljung and Box, Biometrika 65(2), 1978), no sensor fault (a bias from a two-sided CUSUM of the normalised innovation, k = 0.5, h = 5; a stuck value; a gate lock-out){{if .HasTruth}}, and an error within ±2σ on 95 % of ticks{{end}}. Highlighted cells fall short of that.</p>
+<p class="note">Expected values are those of a consistent filter: a NIS inside its two-sided 95 % chi-square band on 95 % of ticks, a mean NIS equal to the mean number of outputs (dof), white innovations (the Ljung–Box test over lags 1–{{.Lags}}: a p-value of at least {{.Level}}; Ljung and Box, Biometrika 65(2), 1978), no sensor fault (a bias from a two-sided CUSUM of the normalised innovation, k = 0.5, h = 10; a stuck value; a gate lock-out){{if .HasTruth}}, and an error within ±2σ on 95 % of ticks{{end}}. Highlighted cells fall short of that.</p>
 
 <h2>Innovations</h2>
 <div class="legend">{{range .Runs}}<span><span class="chip" style="background:{{.Color}}"></span>{{.Gains}}</span>{{end}}<span><span class="chip" style="background:#445"></span>±2√S claimed by each gain set (darker line)</span></div>

@@ -14,7 +14,7 @@ Rerun from the repository root:  /usr/bin/python3 testdata/reference/commissioni
    innovations, and solves the ALS system built with the paper's Kronecker-product form
    (vec P = (I - Abar kron Abar)^-1 vec(Q + L R L')), by numpy.linalg.lstsq, unconstrained.
 3. cusum: the in-control and shifted average run lengths of the two-sided tabular CUSUM with
-   k = 0.5, h = 4 and h = 5, by the Markov chain of Brook and Evans (Biometrika 59(3), 1972),
+   k = 0.5, h = 4 and h = 5 (and h = 10, Surmise's default), by the Markov chain of Brook and Evans (Biometrika 59(3), 1972),
    one-sided chains combined as 1/ARL = 1/ARL+ + 1/ARL-, and by Siegmund's approximation; and
    the same chain for the CUSUM Surmise runs, whose normalised innovation is first limited to
    [-3, 3] so that a lone spike cannot raise an alarm (arl_markov_clip3).
@@ -160,7 +160,7 @@ def siegmund(h, k, shift):
 
 def cusum_section():
     rows = []
-    for h in (4.0, 5.0):
+    for h in (4.0, 5.0, 10.0):
         for shift in (0.0, 0.5, 1.0, 2.0):
             up = cusum_arl_markov(h, 0.5, shift, True)
             dn = cusum_arl_markov(h, 0.5, shift, False)
