@@ -45,7 +45,7 @@ func simulatedRecording(plant *config.Plant, ticks int, seed uint64) *recording.
 			rec.Samples = append(rec.Samples, recording.Sample{Signal: plant.Outputs[j].Signal, Value: y[j], Time: at, Line: k + 2})
 		}
 		for i := range x {
-			rec.Samples = append(rec.Samples, recording.Sample{Signal: TruthColumn(md.States[i].Name), Value: x[i], Time: at, Line: k + 2})
+			rec.Samples = append(rec.Samples, recording.Sample{Signal: config.TruthColumn(md.States[i].Name), Value: x[i], Time: at, Line: k + 2})
 		}
 	}
 	rec.Start, rec.End = t0, t0.Add(time.Duration(ticks-1)*ts)
