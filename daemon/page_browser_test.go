@@ -303,6 +303,10 @@ func TestPageInBrowser(t *testing.T) {
 	if s := eval(`document.getElementById("outputs-table").innerText`); !strings.Contains(s, "tank_outlet") || !strings.Contains(s, "hx_outlet") {
 		t.Errorf("outputs table:\n%s", s)
 	}
+	// Each output's sensor indicators and its Ljung–Box whiteness over the
+	// window, once the window holds enough innovations.
+	poll("the outputs table judges each sensor and its whiteness",
+		`[...document.querySelectorAll("#outputs-table tbody tr")].every(r => /^(ok|bias|stuck|locked)/.test(r.cells[8].textContent) && /white \(p /.test(r.cells[9].textContent))`)
 
 	// 2. Pause freezes the view while updates keep arriving; resume
 	// catches up.
