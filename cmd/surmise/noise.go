@@ -40,10 +40,7 @@ func runNoise(_ context.Context, e *env, args []string) error {
 	fs.StringVar(&out, "o", "", "write the plant file with the identified noise to `FILE`")
 	fs.IntVar(&lags, "lags", estimator.DefaultALSLags, "autocovariance lags to fit (`N`)")
 	fs.IntVar(&segments, "segments", estimator.DefaultALSSegments, "disjoint segments for the standard errors (`N`, 1 for none)")
-	fs.StringVar(&f.tz, "tz", "", "time `zone` of CSV times written without one, such as Europe/Berlin")
-	fs.StringVar(&f.timeColumn, "time-column", "", "CSV time column `name` (default: the first column)")
-	fs.StringVar(&f.delimiter, "delimiter", ",", "CSV field `delimiter`")
-	fs.BoolVar(&f.decimalComma, "decimal-comma", false, "CSV numbers use a decimal comma (needs another --delimiter)")
+	csvFlags(fs, &f)
 	pos, err := parseArgs(fs, args)
 	if err != nil {
 		return err
