@@ -31,9 +31,10 @@ import (
 //	SURMISE_MEASURE=10s SURMISE_SCALE=1000,2000 go test -run 'TestMeasureScale' -v ./daemon
 //
 // SURMISE_MEASURE is how long each measurement runs; SURMISE_SCALE lists
-// the numbers of estimators of the scale measurement (default 1000). They
-// check only what must hold on any machine; the goals are printed beside the
-// figures.
+// the numbers of estimators of the scale measurement (default 1000). Each
+// states its goals as daemon.Goal values and checks them with
+// daemon.CheckGoals: a goal missed fails the test and says by how much.
+// Without SURMISE_MEASURE they skip.
 
 // measureDuration returns SURMISE_MEASURE, or skips the test when it is not
 // set.
@@ -123,6 +124,8 @@ func TestMeasureLatency(t *testing.T) {
 	if p50 <= 0 || p50 > ts {
 		t.Errorf("median latency %v, want within one period %v (a sample waits for the next tick)", p50, ts)
 	}
+	ms := func(d time.Duration) float64 { return float64(d) / float64(time.Millisecond) }
+	daemon.CheckGoals(t, daemon.Goal{What: "p99 sample-to-estimate latency", Got: ms(p99), Limit: ms(ts + 500*time.Microsecond), Unit: "ms"})
 }
 
 // scaleModel is a stable random model of 10 states, 3 inputs and 2 outputs
@@ -327,6 +330,11 @@ func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, cou
 	// count by a tick per estimator or so).
 	if n := float64(ticks1 - ticks0 + missed1 - missed0); n < 0.9*due {
 		t.Errorf("%.0f ticks run or missed of about %.0f due: ticks went unaccounted", n, due)
+	}
+	if count == 1000 { // the goals are stated at 1,000 estimators
+		daemon.CheckGoals(t,
+			daemon.Goal{What: "CPU of 1,000 estimators at 10 Hz", Got: cores, Limit: 0.5, Unit: "cores"},
+			daemon.Goal{What: "ticks missed", Got: float64(missed1 - missed0), Limit: 0, Unit: "ticks"})
 	}
 	if err := r.stop(); err != nil {
 		t.Fatal(err)

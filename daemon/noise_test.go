@@ -114,7 +114,7 @@ func TestIdentifyNoiseFromRecording(t *testing.T) {
 	// of the truth. The identified noise must
 	// come back near the truth, and — the outcome that matters — a Kalman
 	// filter designed from it must be consistent on the recording: mean NIS
-	// per output within 10 % of 1 (Bar-Shalom, Li and Kirubarajan, 2001:
+	// per output within 10 % of 1 (SOURCES.md: nis-band; Bar-Shalom, Li and Kirubarajan, 2001:
 	// for a consistent filter the mean NIS equals the number of outputs),
 	// where the mis-stated filter is far off.
 	path := filepath.Join("..", "testdata", "plants", "hotwater-loop.yaml")

@@ -67,7 +67,7 @@ func denseOf(rows [][]float64) *mat.Dense {
 
 func TestLjungBoxAgainstScipy(t *testing.T) {
 	// Q and p computed by numpy and scipy.stats.chi2.sf on the committed
-	// series (commissioning.py).
+	// series (SOURCES.md: ljung-box).
 	for _, c := range loadCommissioning(t).LjungBox {
 		rho := Autocorrelation(make([]float64, c.Lags), c.Series)
 		for k := range rho {
@@ -95,7 +95,7 @@ func TestLjungBoxDegenerate(t *testing.T) {
 }
 
 func TestIdentifyNoiseAgainstNumpy(t *testing.T) {
-	// The unconstrained ALS solution of numpy.linalg.lstsq on the system
+	// (SOURCES.md: als) The unconstrained ALS solution of numpy.linalg.lstsq on the system
 	// commissioning.py builds with the Kronecker form of Odelson, Rajamani
 	// and Rawlings (2006), on the innovations it committed; our system is
 	// built lag by lag with a Lyapunov solve, so the agreement checks the
@@ -282,7 +282,7 @@ func TestIdentifyNoiseKeepsPSD(t *testing.T) {
 }
 
 func TestSensorWatchARL(t *testing.T) {
-	// The in-control and shifted average run lengths of the two-sided
+	// (SOURCES.md: cusum-arl) The in-control and shifted average run lengths of the two-sided
 	// tabular CUSUM with k = 0.5: Montgomery, Introduction to Statistical
 	// Quality Control, ARL table of the tabular CUSUM (from memory: h = 4:
 	// 168 in control, 8.38 at a one-σ shift; h = 5: 465 and 10.4), and the

@@ -316,7 +316,7 @@ func stateErrors(in *Input, r *Run) []StateSummary {
 //
 // For a white sequence of N values each ρ(j) lies inside ±1.96/√N with
 // probability about 0.95 (Mehra, "On the identification of variances and
-// adaptive Kalman filtering", IEEE TAC 15(2), 1970, from memory);
+// adaptive Kalman filtering", IEEE TAC 15(2), 1970, cited from memory);
 // estimator.LjungBox combines them into one test. A constant sequence
 // gives NaNs; a lag at or beyond the number of values gives 0. It returns
 // dst.
