@@ -36,10 +36,10 @@ func runNoise(_ context.Context, e *env, args []string) error {
 	var f replayFlags
 	var out string
 	var lags, segments int
-	fs.StringVar(&f.data, "data", "", "the recording: a historian CSV or a bus recording (`FILE`)")
+	fs.StringVar(&f.data, "data", "", "the recording `FILE`: a historian CSV or a bus recording")
 	fs.StringVar(&out, "o", "", "write the plant file with the identified noise to `FILE`")
-	fs.IntVar(&lags, "lags", estimator.DefaultALSLags, "autocovariance lags to fit (`N`)")
-	fs.IntVar(&segments, "segments", estimator.DefaultALSSegments, "disjoint segments for the standard errors (`N`, 1 for none)")
+	fs.IntVar(&lags, "lags", estimator.DefaultALSLags, "fit `N` autocovariance lags, 0 to N−1")
+	fs.IntVar(&segments, "segments", estimator.DefaultALSSegments, "split the recording into `N` disjoint segments for the standard errors (1: none)")
 	csvFlags(fs, &f)
 	pos, err := parseArgs(fs, args)
 	if err != nil {
