@@ -498,31 +498,6 @@
     return td;
   }
 
-  // ljungBox returns the Ljung–Box statistic of x over lags 1..h and its p-value, the chance that
-  // χ²(h) exceeds it (Ljung and Box, Biometrika 65(2), 1978); for even h the survival function is
-  // e^(−q/2)·Σ_{i<h/2} (q/2)^i/i! exactly. Null when x is too short or constant.
-  function ljungBox(x, h) {
-    const n = x.length;
-    if (n <= 3 * h) return null;
-    let mean = 0;
-    for (const v of x) mean += v;
-    mean /= n;
-    let c0 = 0;
-    for (const v of x) c0 += (v - mean) * (v - mean);
-    if (!(c0 > 0)) return null;
-    let q = 0;
-    for (let lag = 1; lag <= h; lag++) {
-      let s = 0;
-      for (let t = 0; t + lag < n; t++) s += (x[t] - mean) * (x[t + lag] - mean);
-      const r = s / c0;
-      q += r * r / (n - lag);
-    }
-    q *= n * (n + 2);
-    let term = 1, sum = 1;
-    for (let i = 1; i < h / 2; i++) { term *= q / 2 / i; sum += term; }
-    return { q, p: Math.exp(-q / 2) * sum };
-  }
-
   // whitenessCell tests the innovations output j's active lane used over the last window.
   function whitenessCell(j) {
     const c = cur.store.cols, p = 'o' + j, inn = c[p + 'inn'], flags = c[p + 'flags'];
@@ -531,7 +506,7 @@
       if ((flags[i] & FLAG_USED) && inn[i] != null) x.push(inn[i]);
     }
     x.reverse();
-    const lb = ljungBox(x, LB_LAGS);
+    const lb = window.surmiseStats.ljungBox(x, LB_LAGS);
     if (!lb) return el('td', { text: '—', title: 'too few innovations in the window to test' });
     const white = lb.p >= LB_LEVEL;
     const td = el('td', { text: (white ? 'white' : 'not white') + ' (p ' + (lb.p < 1e-3 ? lb.p.toExponential(1) : lb.p.toFixed(3)) + ')',
