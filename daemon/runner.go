@@ -1,6 +1,7 @@
 package daemon
 
 import (
+	"errors"
 	"fmt"
 	"sync"
 	"sync/atomic"
@@ -9,6 +10,7 @@ import (
 	"github.com/nats-io/nats.go"
 
 	"surmise/config"
+	"surmise/daemon/lease"
 	"surmise/estimator"
 )
 
@@ -34,9 +36,14 @@ type Estimator struct {
 	signals []signal // the engine's signals: inputs, then outputs
 
 	gains   atomic.Pointer[config.GainsFile]
+	lease   atomic.Pointer[lease.Lease] // this estimator's, once taken or awaited
 	gainsOK atomic.Bool
 
 	lastTick atomic.Int64 // start of the latest tick (Daemon.now), 0 before the first
+	// sampled is set by the first sample the engine accepts: until then
+	// every tick runs on operating-point inputs without a measurement, and
+	// the estimator is not ready.
+	sampled atomic.Bool
 
 	// Touched by its ticks only (the ticks of one job never overlap).
 	est       *Estimate
@@ -120,7 +127,9 @@ func (e *Estimator) Subject() string { return e.subject }
 func (e *Estimator) Period() time.Duration { return e.period }
 
 // Pending limits of a signal's subscription: the samples received but not
-// yet handed to the engine. A backlog is only ever a symptom of a process
+// yet handed to the engine. The byte limit is above the largest payload a
+// server lets through by default (1 MiB), so that one long payload reaches
+// DecodeSample and is counted as oversize, not dropped unseen. A backlog is only ever a symptom of a process
 // that cannot keep up, and its samples are mostly too old to be used (only
 // the newest per tick is), so it is kept short: beyond it the client drops
 // samples and reports a slow consumer, instead of the client's defaults
@@ -128,7 +137,7 @@ func (e *Estimator) Period() time.Duration { return e.period }
 // samples are 25 s of a 10 Hz signal, a quarter second of a 1 kHz one.
 const (
 	samplePendingMsgs  = 256
-	samplePendingBytes = 64 << 10
+	samplePendingBytes = 2 << 20
 )
 
 // subscribe makes one subscription per wired signal.
@@ -160,6 +169,8 @@ func (e *Estimator) receive(s *signal, data []byte) {
 	}
 	if r, ok := e.engine.Offer(s.index, v, at, recv); !ok {
 		e.logRefused(s, r, nil)
+	} else if !e.sampled.Load() {
+		e.sampled.Store(true)
 	}
 }
 
@@ -208,13 +219,15 @@ func (e *Estimator) tick(t Tick) {
 	d := e.d
 	e.engine.Tick(t.Due, e.est)
 	e.payload = e.est.AppendJSON(e.payload[:0])
-	connected := d.busConnected()
+	connected := d.busConnected() && e.mayPublish()
 	if connected {
 		// With the reconnect buffer off, Publish fails rather than queue
 		// when the connection dropped since IsConnected: nothing stale is
 		// sent later.
 		if err := d.bus.Conn().Publish(e.subject, e.payload); err == nil {
 			e.observeLatency(time.Now())
+		} else if errors.Is(err, nats.ErrMaxPayload) {
+			d.metrics.BusDropped(DropOversize, 1)
 		}
 	}
 	e.afterTick(connected)
@@ -222,7 +235,7 @@ func (e *Estimator) tick(t Tick) {
 	e.timing = TickTiming{Lateness: t.Lateness, Compute: time.Since(t.Start), Missed: t.Missed}
 	e.metrics.ObserveTick(e.est.Status, e.timing.Lateness, e.timing.Compute, e.timing.Missed)
 	e.lastTick.Store(d.now())
-	ready := connected && e.gainsOK.Load()
+	ready := connected && e.gainsOK.Load() && e.sampled.Load()
 	if r := b2i(ready); r != e.lastReady {
 		e.metrics.SetReady(ready)
 		e.lastReady = r
