@@ -282,16 +282,17 @@ func TestIdentifyNoiseKeepsPSD(t *testing.T) {
 }
 
 func TestSensorWatchARL(t *testing.T) {
-	// (SOURCES.md: cusum-arl) The in-control and shifted average run lengths of the two-sided
-	// tabular CUSUM with k = 0.5: Montgomery, Introduction to Statistical
-	// Quality Control, ARL table of the tabular CUSUM (from memory: h = 4:
-	// 168 in control, 8.38 at a one-σ shift; h = 5: 465 and 10.4), and the
-	// Markov chain of Brook and Evans computed by commissioning.py (167.7,
-	// 8.38; 465.4, 10.38). Our CUSUM limits its input to ±CUSUMClip, which
-	// the same chain computes too (173.2, 8.47; 486.9, 10.49; and for the
-	// default h = 10 at one σ, 20.66): the watch's
-	// simulated ARL is checked against that. The simulated mean of R run
-	// lengths has a standard error of about ARL/√R (near geometric).
+	// (SOURCES.md: cusum-arl) The in-control and shifted average run
+	// lengths of the two-sided tabular CUSUM with k = 0.5: Montgomery,
+	// Introduction to Statistical Quality Control, ARL table of the tabular
+	// CUSUM (from memory: h = 4: 168 in control, 8.38 at a one-σ shift;
+	// h = 5: 465 and 10.4), checked against the Markov chain of Brook and
+	// Evans computed by commissioning.py (167.7, 8.38; 465.4, 10.38). The
+	// watch run as the textbook CUSUM (Clip +Inf) is simulated against that
+	// chain; run as Surmise runs it (input limited to ±CUSUMClip), against
+	// the same chain with the limit (173.2, 8.47; 486.9, 10.49; for the
+	// default h = 10 at one σ, 20.66). The simulated mean of R run lengths
+	// has a standard error of about ARL/√R (run lengths are near geometric).
 	table := map[[2]float64]float64{{4, 0}: 168, {4, 1}: 8.38, {5, 0}: 465, {5, 1}: 10.4}
 	rng := rand.New(rand.NewPCG(5, 9))
 	for _, c := range loadCommissioning(t).CUSUM {
@@ -301,25 +302,31 @@ func TestSensorWatchARL(t *testing.T) {
 		if book, ok := table[[2]float64{c.H, c.Shift}]; ok && math.Abs(book-c.ARLMarkov) > 0.01*book {
 			t.Errorf("h=%v δ=%v: Markov chain %v, table %v", c.H, c.Shift, c.ARLMarkov, book)
 		}
-		w := NewSensorWatch(1, SensorWatchSettings{K: c.K, H: c.H, StuckRepeats: math.MaxInt})
-		const runs = 3000
-		sum := 0.0
-		for r := 0; r < runs; r++ {
-			w.Reset()
-			n := 0
-			for w.State(0).BiasAlarms == 0 {
-				n++
-				z := rng.NormFloat64() + c.Shift
-				w.Update(0, z, z, 1, false)
+		// The textbook CUSUM (no limit) against the chain and the table,
+		// and Surmise's (limited to ±3) against the limited chain.
+		for _, v := range []struct {
+			clip, want float64
+		}{{math.Inf(1), c.ARLMarkov}, {CUSUMClip, c.ARLClip3}} {
+			w := NewSensorWatch(1, SensorWatchSettings{K: c.K, H: c.H, Clip: v.clip, StuckRepeats: math.MaxInt})
+			const runs = 3000
+			sum := 0.0
+			for r := 0; r < runs; r++ {
+				w.Reset()
+				n := 0
+				for w.State(0).BiasAlarms == 0 {
+					n++
+					z := rng.NormFloat64() + c.Shift
+					w.Update(0, z, z, 1, false)
+				}
+				sum += float64(n)
 			}
-			sum += float64(n)
+			arl := sum / runs
+			se := v.want / math.Sqrt(runs)
+			if math.Abs(arl-v.want) > 4*se {
+				t.Errorf("h=%v δ=%v clip %v: simulated ARL %.2f, Markov chain %.2f (±%.2f)", c.H, c.Shift, v.clip, arl, v.want, 4*se)
+			}
+			t.Logf("h=%v δ=%v clip %v: simulated ARL %.2f over %d runs; Markov chain %.2f (Siegmund, unclipped, %.2f)", c.H, c.Shift, v.clip, arl, runs, v.want, c.ARLSiegmund)
 		}
-		arl := sum / runs
-		se := c.ARLClip3 / math.Sqrt(runs)
-		if math.Abs(arl-c.ARLClip3) > 4*se {
-			t.Errorf("h=%v δ=%v: simulated ARL %.2f, Markov chain %.2f (±%.2f)", c.H, c.Shift, arl, c.ARLClip3, 4*se)
-		}
-		t.Logf("h=%v δ=%v: simulated ARL %.2f over %d runs; Markov chain %.2f (unclipped %.2f, Siegmund %.2f)", c.H, c.Shift, arl, runs, c.ARLClip3, c.ARLMarkov, c.ARLSiegmund)
 	}
 }
 

@@ -59,6 +59,9 @@ type SensorWatchSettings struct {
 	// K and H are the CUSUM's reference value and decision interval in
 	// standard deviations; 0 means DefaultCUSUMK, DefaultCUSUMH.
 	K, H float64
+	// Clip limits the normalised innovation the CUSUM takes to ±Clip; 0
+	// means CUSUMClip, +Inf the textbook CUSUM without a limit.
+	Clip float64
 	// StuckRepeats, StuckWindow, StuckRatio, LockoutTicks and
 	// DropoutWindow: 0 means the default of the same name.
 	StuckRepeats, StuckWindow int
@@ -119,7 +122,7 @@ type SensorWatch struct {
 // NewSensorWatch returns a watch over p outputs. It panics if p < 1 or a
 // setting is negative.
 func NewSensorWatch(p int, set SensorWatchSettings) *SensorWatch {
-	if p < 1 || set.K < 0 || set.H < 0 || set.StuckRepeats < 0 || set.StuckWindow < 0 ||
+	if p < 1 || set.K < 0 || set.H < 0 || set.Clip < 0 || set.StuckRepeats < 0 || set.StuckWindow < 0 ||
 		set.StuckRatio < 0 || set.LockoutTicks < 0 || set.DropoutWindow < 0 {
 		panic(fmt.Sprintf("estimator: NewSensorWatch(%d, %+v)", p, set))
 	}
@@ -135,6 +138,7 @@ func NewSensorWatch(p int, set SensorWatchSettings) *SensorWatch {
 	}
 	def(&set.K, DefaultCUSUMK)
 	def(&set.H, DefaultCUSUMH)
+	def(&set.Clip, CUSUMClip)
 	def(&set.StuckRatio, DefaultStuckRatio)
 	defi(&set.StuckRepeats, DefaultStuckRepeats)
 	defi(&set.StuckWindow, DefaultStuckWindow)
@@ -235,7 +239,7 @@ func (w *SensorWatch) Update(j int, measured, innovation, std float64, rejected 
 		// Two-sided tabular CUSUM, held at H + 2 so that an alarm clears
 		// within a few ticks after the bias goes, and a bias of one σ or
 		// more hardly ever dips below H while it lasts.
-		zc := math.Max(-CUSUMClip, math.Min(CUSUMClip, z))
+		zc := math.Max(-w.set.Clip, math.Min(w.set.Clip, z))
 		h, k := w.set.H, w.set.K
 		st.CUSUMHigh = math.Min(math.Max(0, st.CUSUMHigh+zc-k), h+2)
 		st.CUSUMLow = math.Min(math.Max(0, st.CUSUMLow-zc-k), h+2)
