@@ -620,6 +620,9 @@ func (e *Engine) fill(l *lane, dst *Estimate) {
 		o.Late, o.TooLate = e.lateFused[i], e.lateRefused[i]
 		o.Used = dst.Used.Has(j)
 		o.Outlier = l.out.Outliers.Has(j)
+		ws := l.watch.State(j)
+		o.Bias, o.CUSUM = ws.Bias, max(ws.CUSUMHigh, ws.CUSUMLow)
+		o.Stuck, o.LockedOut, o.Dropout = ws.Stuck, ws.LockedOut, ws.Dropout
 		o.Stale = e.fresh.Has(j) && !e.present.Has(j)
 		o.Age = math.NaN()
 		o.Received = time.Time{}
@@ -815,6 +818,7 @@ func (e *Engine) observe(l *lane, active bool) {
 		if l.out.Outliers.Has(j) {
 			g.Outlier(j)
 		}
+		g.SetSensor(j, l.watch.State(j))
 	}
 	g.SetNIS(l.lastNIS, l.mean, l.outOfBand)
 	g.SetNISBand(l.lo, l.hi)

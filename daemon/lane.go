@@ -27,6 +27,7 @@ type lane struct {
 	gm                 *GainsMetrics // nil without metrics, or sharing another lane's name
 	gmName             string        // the gains label of gm
 	lastNIS            float64       // NIS of the last tick that had one
+	watch              *estimator.SensorWatch
 	// divergence: held counts the ticks since the lane diverged (0: it has
 	// not); why says what diverged; reinit is true on the tick the lane was
 	// re-initialised.
@@ -69,6 +70,7 @@ func (e *Engine) newLane(p *estimator.Prepared) *lane {
 		r:    make([]float64, e.p),
 		s:    make([]float64, e.p),
 	}
+	l.watch = estimator.NewSensorWatch(e.p, estimator.SensorWatchSettings{})
 	for j := range l.rms {
 		l.rms[j] = newRMSWindow(e.window)
 	}
@@ -98,9 +100,11 @@ func (l *lane) use(p *estimator.Prepared) {
 	l.emptyWindows()
 }
 
-// emptyWindows empties the consistency windows between ticks.
+// emptyWindows empties the consistency windows and the sensor watch
+// between ticks.
 func (l *lane) emptyWindows() {
 	l.win.Reset()
+	l.watch.Reset()
 	for j := range l.rms {
 		l.rms[j].reset()
 	}
@@ -139,6 +143,15 @@ func (l *lane) tick(e *Engine, rebuild bool) {
 	l.advance(e, e.seq, e.u, e.y, e.present, !rebuild)
 	if rebuild {
 		l.rebuildWindows(e)
+	}
+	for j := 0; j < e.p; j++ {
+		// Sensor faults judge the sample against the prediction, an
+		// outlier's too; a re-run does not judge the past again.
+		inn := l.r[j]
+		if math.IsNaN(inn) && e.present.Has(j) {
+			inn = e.y[j] - l.yhat[j]
+		}
+		l.watch.Update(j, e.y[j], inn, math.Sqrt(l.s[j]), l.out.Outliers.Has(j))
 	}
 	l.judge(e)
 }

@@ -204,9 +204,9 @@ func TestReplayDrawnStartCoverage(t *testing.T) {
 	if code != 0 {
 		t.Fatalf("replay: exit %d\n%s%s", code, stdout, stderr)
 	}
-	for _, w := range []string{"coasting 0.0 %", "outliers rejected 0", "within 2σ   element_temp", "within 2σ   heat_loss"} {
-		if strings.Count(stdout, w) != 2 {
-			t.Errorf("stdout has %q %d times, want once per gain set:\n%s", w, strings.Count(stdout, w), stdout)
+	for w, n := range map[string]int{"coasting 0.0 %": 2, "outliers rejected 0": 2, "element_temp   RMS": 2, "within ±2σ on": 8} {
+		if strings.Count(stdout, w) != n {
+			t.Errorf("stdout has %q %d times, want %d (per gain set, per state):\n%s", w, strings.Count(stdout, w), n, stdout)
 		}
 	}
 }
