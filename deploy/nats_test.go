@@ -26,6 +26,9 @@ import (
 	"github.com/nats-io/nkeys"
 	"golang.org/x/crypto/bcrypt"
 	"gopkg.in/yaml.v3"
+
+	surmise "surmise/daemon"
+	"surmise/daemon/lease"
 )
 
 // The NATS files name the paths of a real installation (/etc/nats/…, /var/lib/nats/…) and hold
@@ -48,6 +51,7 @@ func placeholderHash(user string) string {
 // Test passwords of the users that log in with one; never used outside these tests.
 var natsPasswords = map[string]string{
 	"engineer":     "engineer-test-password",
+	"gains-admin":  "gains-admin-test-password",
 	"dashboard":    "dashboard-test-password",
 	"plant-bridge": "bridge-test-password",
 	"admin":        "admin-test-password",
@@ -248,7 +252,7 @@ func TestNATSConfigs(t *testing.T) {
 			}
 		}
 		slices.Sort(users)
-		if want := []string{"admin", "dashboard", "engineer", "plant-bridge"}; !slices.Equal(users, want) {
+		if want := []string{"admin", "dashboard", "engineer", "gains-admin", "plant-bridge"}; !slices.Equal(users, want) {
 			t.Errorf("nats-%d.conf: users %v, want %v", n, users, want)
 		}
 		if len(opts.Nkeys) != 1 || opts.Nkeys[0].Nkey != s.daemonPub {
@@ -438,6 +442,7 @@ func TestNATSPermissions(t *testing.T) {
 	pw := func(user string) nats.Option { return nats.UserInfo(user, natsPasswords[user]) }
 	daemon := mustConnect("daemon", nats.Nkey(s.daemonPub, s.daemon.Sign))
 	engineer := mustConnect("engineer", pw("engineer"))
+	gainsAdmin := mustConnect("gains-admin", pw("gains-admin"))
 	dashboard := mustConnect("dashboard", pw("dashboard"))
 	bridge := mustConnect("plant-bridge", pw("plant-bridge"))
 
@@ -510,18 +515,38 @@ func TestNATSPermissions(t *testing.T) {
 		t.Cleanup(func() { _ = svc.Stop() })
 		group := svc.AddGroup("surmise.control." + name)
 		verbs := []string{"status", "load", "promote", "rollback", "reset"}
+		origins := make(chan surmise.Origin, len(verbs)+1)
 		for _, v := range verbs {
-			if err := group.AddEndpoint(v, micro.HandlerFunc(func(r micro.Request) { _ = r.Respond([]byte(v)) })); err != nil {
+			if err := group.AddEndpoint(v, micro.HandlerFunc(func(r micro.Request) {
+				select {
+				case origins <- surmise.RequestOrigin(r.Headers(), r.Reply()):
+				default:
+				}
+				_ = r.Respond([]byte(v))
+			})); err != nil {
 				t.Fatal(err)
 			}
 		}
 		daemon.noViolations(t, "daemon")
 		for _, v := range verbs {
-			m, err := engineer.Request(control+v, nil, 5*time.Second)
+			// The engineer writes an identity of its own: the server replaces it on the
+			// way through the import.
+			req := &nats.Msg{Subject: control + v, Header: nats.Header{}}
+			req.Header.Set(surmise.HeaderRequestInfo, `{"acc":"SURMISE","user":"someone-else"}`)
+			m, err := engineer.RequestMsg(req, 5*time.Second)
 			if err != nil || string(m.Data) != v {
 				t.Errorf("engineer %s: %v", control+v, err)
+				continue
+			}
+			if o := <-origins; !o.Verified || !strings.Contains(o.Who, "account=ENGINEERS user=engineer") || strings.Contains(o.Who, "someone-else") {
+				t.Errorf("engineer %s: the daemon sees origin %+v, want the engineer, verified", v, o)
 			}
 		}
+		// Within the daemons' account nobody may call a verb that changes anything.
+		if err := gainsAdmin.Publish(control+"reset", nil); err != nil {
+			t.Fatal(err)
+		}
+		gainsAdmin.expectViolation(t, "Publish", control+"reset")
 		for _, who := range []*client{engineer, dashboard} {
 			for _, subj := range []string{"$SRV.PING", "$SRV.INFO.surmise", "$SRV.STATS.surmise"} {
 				if _, err := who.Request(subj, nil, 5*time.Second); err != nil {
@@ -531,6 +556,8 @@ func TestNATSPermissions(t *testing.T) {
 		}
 		if m, err := dashboard.Request(control+"status", nil, 5*time.Second); err != nil || string(m.Data) != "status" {
 			t.Errorf("dashboard status: %v", err)
+		} else if o := <-origins; o.Verified {
+			t.Errorf("a status request from the daemons' own account verified: %+v", o)
 		}
 		engineer.noViolations(t, "engineer")
 		dashboard.noViolations(t, "dashboard")
@@ -567,19 +594,39 @@ func TestNATSPermissions(t *testing.T) {
 		bridge.expectViolation(t, "Subscription", "pilot.>")
 	})
 
+	t.Run("the daemons' leases", func(t *testing.T) {
+		ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
+		defer cancel()
+		m, err := lease.Open(ctx, daemon.Conn, lease.Config{Bucket: surmise.DefaultLeaseBucket})
+		if err != nil {
+			t.Fatalf("daemon: the lease bucket: %v (server errors: %v)", err, daemon.pending())
+		}
+		l, err := m.Acquire(ctx, name)
+		if err != nil {
+			t.Fatalf("daemon: taking a lease: %v (server errors: %v)", err, daemon.pending())
+		}
+		if err := l.Release(ctx); err != nil {
+			t.Errorf("daemon: releasing a lease: %v", err)
+		}
+		if err := m.Close(ctx); err != nil {
+			t.Error(err)
+		}
+		daemon.noViolations(t, "daemon")
+	})
+
 	t.Run("gains through the key-value bucket", func(t *testing.T) {
 		ctx, cancel := context.WithTimeout(context.Background(), 20*time.Second)
 		defer cancel()
-		ejs, err := jetstream.New(engineer.Conn)
+		ejs, err := jetstream.New(gainsAdmin.Conn)
 		if err != nil {
 			t.Fatal(err)
 		}
 		ekv, err := ejs.CreateKeyValue(ctx, jetstream.KeyValueConfig{Bucket: "surmise-gains", History: 10})
 		if err != nil {
-			t.Fatalf("engineer: creating the bucket: %v", err)
+			t.Fatalf("gains-admin: creating the bucket: %v", err)
 		}
 		if _, err := ekv.Put(ctx, name, []byte("gains v1")); err != nil {
-			t.Fatalf("engineer: put: %v", err)
+			t.Fatalf("gains-admin: put: %v", err)
 		}
 
 		djs, err := jetstream.New(daemon.Conn)
@@ -625,10 +672,10 @@ func TestNATSPermissions(t *testing.T) {
 			t.Fatalf("daemon: put: %v", err)
 		}
 		if e, err := ekv.Get(ctx, name); err != nil || string(e.Value()) != "gains v3" {
-			t.Errorf("engineer: get after the daemon's put: %v", err)
+			t.Errorf("gains-admin: get after the daemon's put: %v", err)
 		}
 		daemon.noViolations(t, "daemon")
-		engineer.noViolations(t, "engineer")
+		gainsAdmin.noViolations(t, "gains-admin")
 
 		for _, subj := range []string{"$KV.surmise-gains." + name, "$JS.API.STREAM.INFO.KV_surmise-gains"} {
 			if err := dashboard.Publish(subj, []byte("x")); err != nil {
@@ -654,24 +701,24 @@ func TestNATSPermissions(t *testing.T) {
 			}
 		}
 		bridge.noViolations(t, "plant-bridge")
-		ejs, err := jetstream.New(engineer.Conn)
+		ejs, err := jetstream.New(gainsAdmin.Conn)
 		if err != nil {
 			t.Fatal(err)
 		}
 		cons, err := ejs.OrderedConsumer(ctx, "SURMISE_RECORDINGS", jetstream.OrderedConsumerConfig{})
 		if err != nil {
-			t.Fatalf("engineer: replaying the recordings: %v", err)
+			t.Fatalf("gains-admin: replaying the recordings: %v", err)
 		}
 		for i, subj := range samples {
 			m, err := cons.Next(jetstream.FetchMaxWait(5 * time.Second))
 			if err != nil {
-				t.Fatalf("engineer: recording %d: %v (server errors: %v)", i, err, engineer.pending())
+				t.Fatalf("gains-admin: recording %d: %v (server errors: %v)", i, err, gainsAdmin.pending())
 			}
 			if m.Subject() != subj || string(m.Data()) != fmt.Sprint(60+i) {
-				t.Errorf("engineer: recording %d is %s %q, want %s %q", i, m.Subject(), m.Data(), subj, fmt.Sprint(60+i))
+				t.Errorf("gains-admin: recording %d is %s %q, want %s %q", i, m.Subject(), m.Data(), subj, fmt.Sprint(60+i))
 			}
 		}
 		daemon.noViolations(t, "daemon")
-		engineer.noViolations(t, "engineer")
+		gainsAdmin.noViolations(t, "gains-admin")
 	})
 }
