@@ -124,6 +124,9 @@ func TestOneWriterPerEstimator(t *testing.T) {
 		t.Fatal(err)
 	}
 	checkFor(t, 3*time.Second, 20*time.Millisecond, func() error {
+		// Samples keep arriving, as on a plant: a daemon is ready only once
+		// its engine has had one.
+		publishSample(t, nc, spec)
 		if code, body := readyz(t, third); code != http.StatusOK {
 			return fmt.Errorf("standby not ready after the holder stopped: %d %s", code, body)
 		}

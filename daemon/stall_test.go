@@ -146,6 +146,9 @@ func TestStalledServer(t *testing.T) {
 		t.Fatal(err)
 	}
 	checkFor(t, 10*time.Second, 20*time.Millisecond, func() error {
+		// Samples keep arriving, as on a plant: a daemon is ready only once
+		// its engine has had one.
+		publishSample(t, nc, spec)
 		if code, body := readyz(t, r); code != http.StatusOK {
 			return fmt.Errorf("/readyz %d %s after SIGCONT", code, body)
 		}
