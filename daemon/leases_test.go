@@ -60,6 +60,10 @@ func TestOneWriterPerEstimator(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer nc.Close()
+	// A plant feeds both daemons (readiness wants samples).
+	stopFeed, fed := make(chan struct{}), make(chan struct{})
+	go func() { defer close(fed); feed(nc, spec, ts, stopFeed) }()
+	defer func() { close(stopFeed); <-fed }()
 	var mu sync.Mutex
 	seqs := map[uint64]int{}
 	if _, err := nc.Subscribe(daemon.EstimateSubject(spec.Plant), func(m *nats.Msg) {

@@ -98,6 +98,9 @@ func TestStalledServer(t *testing.T) {
 	}); err != nil {
 		t.Fatal(err)
 	}
+	stopFeed, fed := make(chan struct{}), make(chan struct{})
+	go func() { defer close(fed); feed(nc, spec, ts, stopFeed) }()
+	defer func() { close(stopFeed); <-fed }()
 	checkFor(t, 10*time.Second, 20*time.Millisecond, func() error {
 		if len(got.since(time.Time{})) < 5 {
 			return errors.New("no estimates on the bus yet")
