@@ -4,6 +4,7 @@ import (
 	"bufio"
 	"crypto/rand"
 	"encoding/base64"
+	"errors"
 	"fmt"
 	"net/url"
 	"os"
@@ -49,9 +50,9 @@ const (
 // LocalAccess is what the daemon writes for local clients: the server's URL
 // and the local user's password.
 type LocalAccess struct {
-	URL      string
-	User     string
-	Password string
+	URL      string // where the embedded server listens
+	User     string // LocalUser
+	Password string // drawn at random at each start
 }
 
 // newLocalPassword draws a random password (192 bits).
@@ -191,9 +192,19 @@ func ReadUserFile(path string) (user, password string, err error) {
 	if !sc.Scan() {
 		return "", "", fmt.Errorf("user file %s: empty; want one line USER:PASSWORD", path)
 	}
-	user, password, ok := strings.Cut(strings.TrimSpace(sc.Text()), ":")
+	user, password, err = parseUserLine(sc.Text())
+	if err != nil {
+		return "", "", fmt.Errorf("user file %s: line 1: %w", path, err)
+	}
+	return user, password, nil
+}
+
+// parseUserLine parses "USER:PASSWORD" (surrounding space ignored; the
+// password may hold colons, the user may not be empty).
+func parseUserLine(line string) (user, password string, err error) {
+	user, password, ok := strings.Cut(strings.TrimSpace(line), ":")
 	if !ok || user == "" || password == "" {
-		return "", "", fmt.Errorf("user file %s: line 1: want USER:PASSWORD", path)
+		return "", "", errors.New("want USER:PASSWORD")
 	}
 	return user, password, nil
 }

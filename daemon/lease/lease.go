@@ -86,9 +86,9 @@ func Self() Owner {
 
 // HeldError says that another owner holds a lease.
 type HeldError struct {
-	Key   string
-	Owner Owner
-	TTL   time.Duration
+	Key   string        // the lease's key
+	Owner Owner         // who holds it
+	TTL   time.Duration // how long it outlives its holder's last renewal
 }
 
 // Error reads "KEY: held by instance X (host H, pid P) since T; ...".
