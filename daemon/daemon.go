@@ -76,6 +76,15 @@ type Options struct {
 	// information collectors as well.
 	Registry *prometheus.Registry
 
+	// Instance names this daemon in every estimate it publishes
+	// ("instance") and, in a fleet, as the owner of its estimators; empty
+	// means DefaultInstance().
+	Instance string
+
+	// Metrics is how many series each estimator has: MetricsFull (the
+	// zero value) or, for a fleet of many estimators, MetricsSummary.
+	Metrics MetricsLevel
+
 	// StateDir holds the embedded server's JetStream store (under
 	// StateDir/nats). Empty means a temporary directory, removed when the
 	// daemon stops.
@@ -135,6 +144,9 @@ func (o *Options) setDefaults() {
 	if o.Logger == nil {
 		o.Logger = slog.New(slog.DiscardHandler)
 	}
+	if o.Instance == "" {
+		o.Instance = DefaultInstance()
+	}
 	if o.Notify == nil {
 		o.Notify = func(state string) error {
 			_, err := sd.SdNotify(false, state)
@@ -189,6 +201,17 @@ func (o *Options) validate() error {
 	return nil
 }
 
+// DefaultInstance returns the instance name of a daemon that is given
+// none: the host name and the process id, "host-1234" (in a Kubernetes pod,
+// the pod's name and 1). Two daemons on one host differ by their process id.
+func DefaultInstance() string {
+	host, err := os.Hostname()
+	if err != nil || host == "" {
+		host = "localhost"
+	}
+	return fmt.Sprintf("%s-%d", host, os.Getpid())
+}
+
 // periodOf returns the tick period of a plant, its sample time.
 func periodOf(p *config.Plant) time.Duration {
 	return time.Duration(p.Model.Ts * float64(time.Second))
@@ -228,6 +251,7 @@ type Daemon struct {
 	ns          *server.Server // the embedded server, when it is ours
 	tempState   string         // a temporary state directory to remove
 	bus         *Bus
+	router      *sampleRouter // the samples' dispatch path (dispatch.go)
 	schedCancel context.CancelFunc
 	schedDone   chan struct{}
 }
@@ -263,7 +287,7 @@ func New(opts Options) (*Daemon, error) {
 			return nil, err
 		}
 	}
-	m, err := newMetrics(reg)
+	m, err := newMetrics(reg, opts.Metrics)
 	if err != nil {
 		return nil, err
 	}
@@ -303,13 +327,13 @@ func New(opts Options) (*Daemon, error) {
 // newMetrics is NewMetrics with an error instead of a panic when the
 // registry already holds the daemon's metrics (two daemons on one registry:
 // an embedder's mistake that New can report).
-func newMetrics(reg prometheus.Registerer) (m *Metrics, err error) {
+func newMetrics(reg prometheus.Registerer, level MetricsLevel) (m *Metrics, err error) {
 	defer func() {
 		if r := recover(); r != nil {
 			err = fmt.Errorf("daemon metrics: %v", r)
 		}
 	}()
-	return NewMetrics(reg), nil
+	return NewMetricsLevel(reg, level), nil
 }
 
 // Estimators returns the daemon's estimators, in the order of Options.Plants.
@@ -398,8 +422,14 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 		return ep, err
 	}
 	d.bus = bus
+	signals := 0
 	for _, e := range d.estimators {
-		if err := e.subscribe(bus.Conn()); err != nil {
+		signals += len(e.signals)
+	}
+	d.router = newSampleRouter(signals)
+	d.router.start(g)
+	for _, e := range d.estimators {
+		if err := d.router.subscribe(bus.Conn(), e); err != nil {
 			return ep, err
 		}
 	}

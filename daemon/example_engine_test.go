@@ -46,11 +46,11 @@ func ExampleEngine() {
 	if _, ok := e.Offer(hx, 54.4, t0.Add(1500*time.Millisecond), t0.Add(2100*time.Millisecond)); !ok {
 		fmt.Println("a sample dated before the last tick is refused")
 	}
-	fmt.Printf("%.60s…\n", est.AppendJSON(nil))
+	fmt.Printf("%.110s…\n", est.AppendJSON(nil))
 	// Output:
 	// tick 1 tracking, corrected with 2 output(s), element 91.20 degC
 	// tick 2 tracking, corrected with 1 output(s), element 91.46 degC
 	// tick 3 tracking, corrected with 2 output(s), element 91.69 degC
 	// a sample dated before the last tick is refused
-	// {"time":"2025-03-01T12:00:02Z","seq":3,"status":"tracking","…
+	// {"estimator":"hotwater-loop-discrete","instance":"","time":"2025-03-01T12:00:02Z","seq":3,"status":"tracking",…
 }

@@ -30,7 +30,8 @@ type Estimator struct {
 	period  time.Duration // the plant's sample time
 	engine  *Engine
 	metrics *EstimatorMetrics
-	signals []signal // the engine's signals: inputs, then outputs
+	signals []signal             // the engine's signals: inputs, then outputs
+	subs    []*nats.Subscription // one per signal while subscribed (dispatch.go)
 
 	gains   atomic.Pointer[config.GainsFile]
 	gainsOK atomic.Bool
@@ -69,6 +70,7 @@ func newEstimator(d *Daemon, spec PlantSpec, active *estimator.Prepared) *Estima
 		est:       eng.NewEstimate(),
 		lastReady: -1,
 	}
+	e.est.Instance = d.opts.Instance
 	e.gains.Store(spec.Gains)
 	e.gainsOK.Store(true)
 	met.SetReady(false)
@@ -117,33 +119,6 @@ func (e *Estimator) Subject() string { return e.subject }
 
 // Period returns its tick period, the plant's sample time.
 func (e *Estimator) Period() time.Duration { return e.period }
-
-// Pending limits of a signal's subscription: the samples received but not
-// yet handed to the engine. A backlog is only ever a symptom of a process
-// that cannot keep up, and its samples are mostly too old to be used (only
-// the newest per tick is), so it is kept short: beyond it the client drops
-// samples and reports a slow consumer, instead of the client's defaults
-// (512 Ki messages, 64 MiB per subscription) letting memory grow. 256
-// samples are 25 s of a 10 Hz signal, a quarter second of a 1 kHz one.
-const (
-	samplePendingMsgs  = 256
-	samplePendingBytes = 64 << 10
-)
-
-// subscribe makes one subscription per wired signal.
-func (e *Estimator) subscribe(nc *nats.Conn) error {
-	for i := range e.signals {
-		s := &e.signals[i]
-		sub, err := nc.Subscribe(s.subject, func(msg *nats.Msg) { e.receive(s, msg.Data) })
-		if err == nil {
-			err = sub.SetPendingLimits(samplePendingMsgs, samplePendingBytes)
-		}
-		if err != nil {
-			return fmt.Errorf("estimator %s: subscribing to %s: %w", e.name, s.subject, err)
-		}
-	}
-	return nil
-}
 
 // receive decodes one payload of signal s and offers it to the engine, which
 // counts it; a payload that does not decode is counted here.

@@ -237,7 +237,7 @@ func ctlRequest(ctx context.Context, f ctlFlags, msg *nats.Msg) (*nats.Msg, erro
 	case errors.Is(err, nats.ErrNoResponders):
 		return nil, &exitError{code: 1, msg: fmt.Sprintf("no daemon answers on %s (is surmise run up on %s, and is the estimator's name right?)", msg.Subject, f.nats)}
 	case errors.Is(err, context.DeadlineExceeded):
-		return nil, &exitError{code: 1, msg: fmt.Sprintf("no reply on %s within %v", msg.Subject, f.timeout)}
+		return nil, &exitError{code: 1, msg: fmt.Sprintf("no reply on %s within %v (a daemon answers only for the estimators it runs: is the name right?)", msg.Subject, f.timeout)}
 	case err != nil:
 		return nil, &exitError{code: 1, msg: fmt.Sprintf("%s: %v", msg.Subject, err)}
 	}

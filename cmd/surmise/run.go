@@ -52,6 +52,7 @@ type runFlags struct {
 	listen               string
 	logFormat, logLevel  string
 	stateDir             string
+	metrics              string
 }
 
 func runRun(ctx context.Context, e *env, args []string) error {
@@ -68,6 +69,7 @@ func runRun(ctx context.Context, e *env, args []string) error {
 	flags.StringVar(&f.logFormat, "log-format", "text", "log `format`: text or json (on standard error)")
 	flags.StringVar(&f.logLevel, "log-level", "info", "log `level`: debug, info, warn or error")
 	flags.StringVar(&f.stateDir, "state-dir", "", "`directory` for the embedded server's JetStream store (default: a temporary one, removed at exit)")
+	flags.StringVar(&f.metrics, "metrics", "full", "per-estimator metric `level`: full (every series) or summary (health only, for many estimators)")
 	pos, err := parseArgs(flags, args)
 	if err != nil {
 		return err
@@ -80,6 +82,10 @@ func runRun(ctx context.Context, e *env, args []string) error {
 	log, err := newLogger(e.stderr, f.logFormat, f.logLevel)
 	if err != nil {
 		return err
+	}
+	level, err := daemon.ParseMetricsLevel(f.metrics)
+	if err != nil {
+		return usageError("--metrics: %v", err)
 	}
 	if f.nats != "" && explicit["nats-port"] {
 		return usageError("--nats-port is the embedded server's port; it cannot be combined with --nats")
@@ -111,6 +117,7 @@ func runRun(ctx context.Context, e *env, args []string) error {
 		Listen:       f.listen,
 		Logger:       log,
 		StateDir:     f.stateDir,
+		Metrics:      level,
 		Started: func(ep daemon.Endpoints) {
 			where := "connecting to " + ep.BusURL
 			if ep.Embedded {
