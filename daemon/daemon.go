@@ -37,11 +37,7 @@ type PlantSpec struct {
 // EstimateSubject returns the subject the estimates of plant are published
 // on: "<publish prefix>.estimate", by default surmise.<name>.estimate.
 func EstimateSubject(plant *config.Plant) string {
-	prefix := plant.Publish
-	if prefix == "" {
-		prefix = config.PublishRoot + "." + plant.Name
-	}
-	return prefix + ".estimate"
+	return plant.PublishPrefix() + ".estimate"
 }
 
 // Options configures a Daemon. A zero field means its default; New sets the

@@ -375,8 +375,10 @@ func (e *Engine) applyChanges() {
 //     correct with the outputs present.
 //  4. Status, the most serious that holds, in this order of precedence:
 //     stale-input (step 1), suspect (a full window's mean NIS outside its
-//     95 % band; it stays while the window holds the evidence, even on
-//     ticks that only predict), coasting (nothing corrected: no fresh
+//     95 % band, the NIS of outputs the gate refused counted at the gate's
+//     threshold; it stays while the window holds the evidence, even on
+//     ticks that only predict; or the gate has refused every present output
+//     on estimator.GateSuspect ticks in a row), coasting (nothing corrected: no fresh
 //     measurement, all rejected by the gate, or no fixed gain for the
 //     pattern), tracking.
 //  5. dst gets the estimate; with metrics attached, the series listed at
@@ -639,7 +641,12 @@ func (l *lane) step(e *Engine) {
 	l.f.InnovationVarTo(l.s)
 	if l.out.HasNIS {
 		l.lastNIS = l.out.NIS
-		l.win.Add(l.out.NIS, l.out.Dof)
+	}
+	// The window judges every present output, the gate's refusals
+	// included (clipped at the gate: estimator.Outcome.GateNIS), so that a
+	// gate refusing everything cannot hide an inconsistent filter.
+	if l.out.GateDof > 0 {
+		l.win.Add(l.out.GateNIS, l.out.GateDof)
 	}
 	for j := range l.rms {
 		if l.out.Used.Has(j) {
@@ -652,7 +659,7 @@ func (l *lane) step(e *Engine) {
 	switch {
 	case e.stale:
 		l.status = StatusStaleInput
-	case l.outOfBand:
+	case l.outOfBand || l.out.Refusing:
 		l.status = StatusSuspect
 	case !l.out.Corrected:
 		l.status = StatusCoasting

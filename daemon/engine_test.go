@@ -460,7 +460,11 @@ func TestEngineNoGainCoasts(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	e := NewEngine(engPlant(md, 5*time.Second, -100, 100, 0), prep, EngineOptions{})
+	// Without an initial covariance the fixed gain starts settled, with no
+	// acquisition (estimator.Filter).
+	plant := engPlant(md, 5*time.Second, -100, 100, 0)
+	plant.InitialCov = nil
+	e := NewEngine(plant, prep, EngineOptions{})
 	est := e.NewEstimate()
 	steps := []struct {
 		ya, yb float64 // NaN: not offered

@@ -50,7 +50,7 @@ func ExampleEngine() {
 	// Output:
 	// tick 1 tracking, corrected with 2 output(s), element 91.20 degC
 	// tick 2 tracking, corrected with 1 output(s), element 91.46 degC
-	// tick 3 tracking, corrected with 2 output(s), element 91.69 degC
+	// tick 3 tracking, corrected with 2 output(s), element 91.67 degC
 	// a sample dated before the last tick is refused
 	// {"estimator":"hotwater-loop-discrete","instance":"","time":"2025-03-01T12:00:02Z","seq":3,"status":"tracking",…
 }

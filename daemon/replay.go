@@ -14,22 +14,6 @@ import (
 	"surmise/estimator"
 )
 
-// TruthSubject returns the subject on which a simulated plant publishes the
-// true value of a state: "<publish prefix>.truth.<state>" (by default
-// surmise.<name>.truth.<state>). A replay of a bus recording that holds
-// these subjects compares the estimates with them.
-func TruthSubject(plant *config.Plant, state string) string {
-	prefix := plant.Publish
-	if prefix == "" {
-		prefix = config.PublishRoot + "." + plant.Name
-	}
-	return prefix + ".truth." + state
-}
-
-// TruthColumn returns the CSV column name of the true value of a state,
-// "truth.<state>", as `surmise simulate --csv` writes it.
-func TruthColumn(state string) string { return "truth." + state }
-
 // ReplaySource is a recording prepared for Replay: the samples of the plant's
 // wired signals in the order they were received, the true states when the
 // recording has them, and every issue found in reading and preparing it.
@@ -108,9 +92,9 @@ func newWiring(plant *config.Plant, bySubject bool) wiring {
 	w.n = n
 	for i := 0; i < n; i++ {
 		name := signalName(plant.Model.States, i, "x")
-		key := TruthColumn(name)
+		key := config.TruthColumn(name)
 		if bySubject {
-			key = TruthSubject(plant, name)
+			key = plant.TruthSubject(name)
 		}
 		w.truth[key] = i
 	}
@@ -127,7 +111,7 @@ func CSVColumns(plant *config.Plant) []string {
 	}
 	n, _, _ := plant.Model.Dims()
 	for i := 0; i < n; i++ {
-		cols = append(cols, TruthColumn(signalName(plant.Model.States, i, "x")))
+		cols = append(cols, config.TruthColumn(signalName(plant.Model.States, i, "x")))
 	}
 	return cols
 }

@@ -135,9 +135,10 @@ func shadowRig(t testing.TB, candidate string, dwell time.Duration) *cmRig {
 // Kalman filter in shadow on the same samples for 600 ticks, and compares
 // their windowed consistency over the last 200: the Kalman filter's mean
 // NIS lies in the 95 % chi-square band of a 200-tick window (Bar-Shalom, Li
-// and Kirubarajan: 200·mean is χ²(200) for a consistent filter), the slow
-// set's lies far above it (it has not converged from the initial error), and
-// the Kalman filter's innovation RMS is less than half the slow set's. The
+// and Kirubarajan: 200·mean is χ²(200) for a consistent filter), and so does
+// the slow set's — it judges its innovations with the covariance of its own
+// gain, so it is honest about being worse — while the Kalman filter's
+// innovation RMS is less than half the slow set's. The
 // candidate never changes the active estimate: a twin run without it
 // publishes the same numbers.
 func TestShadowCandidateIsMeasurablyBetter(t *testing.T) {
@@ -170,8 +171,8 @@ func TestShadowCandidateIsMeasurablyBetter(t *testing.T) {
 	if !(km >= lo && km <= hi) {
 		t.Errorf("the Kalman candidate's windowed NIS mean %v is outside [%v, %v]", km, lo, hi)
 	}
-	if !(sm > hi) {
-		t.Errorf("the slow set's windowed NIS mean %v is not above the band's %v", sm, hi)
+	if !(sm >= lo && sm <= hi) {
+		t.Errorf("the slow set's windowed NIS mean %v is outside [%v, %v]: its covariance is not its own", sm, lo, hi)
 	}
 	if !(krms < 0.5*srms) {
 		t.Errorf("innovation RMS: candidate %v, active %v; want the candidate's below half", krms, srms)
@@ -255,8 +256,8 @@ func TestPromote(t *testing.T) {
 			rep.Jump.States[0].Name != "position" || rep.Jump.States[0].Difference != dx {
 			t.Fatalf("unconfirmed reply %+v", rep)
 		}
-		if rep.Jump.Norm < 1 {
-			t.Errorf("jump %v: the slow set should still be far off", rep.Jump.Norm)
+		if rep.Jump.Norm < 0.1 {
+			t.Errorf("jump %v: the slow set should still lag the Kalman filter", rep.Jump.Norm)
 		}
 		r.tick()
 		twin.tick()
@@ -364,12 +365,13 @@ func TestReset(t *testing.T) {
 		t.Errorf("reply state %v", rep.State)
 	}
 	r.tick()
-	// The first step after a reset does not predict: with the fast
-	// current-form gain L, x̂ = x_reset + L·(y − C·x_reset), in deviations
-	// from the nominal (1, 0): x_reset = (4, 0).
-	l := cmSet(t, r.plant.Model, "fast").Set.Gains[0].L
+	// The first step after a reset does not predict, and a reset with a
+	// covariance acquires with the Kalman gain (estimator.Filter): with
+	// P = diag(0.5², 0.2²), C = [1 0] and R = 0.1², K = (0.25/0.26, 0) and
+	// x̂ = x_reset + K·(y − C·x_reset), in deviations from the nominal (1, 0):
+	// x_reset = (4, 0).
 	innov := (r.y[0] - 1) - 4
-	want := []float64{1 + 4 + l.At(0, 0)*innov, 0 + l.At(1, 0)*innov}
+	want := []float64{1 + 4 + 0.25/0.26*innov, 0}
 	for i, w := range want {
 		if got := r.est.States[i].Value; math.Abs(got-w) > 1e-12 {
 			t.Errorf("state %d after the reset: %v, want %v", i, got, w)

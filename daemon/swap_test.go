@@ -116,7 +116,9 @@ func (sc *swapCheck) verify(t testing.TB, recs []swapRecord) (swaps, ambiguous i
 // swapRig is a cart rig running "fast" with "steady" as the previous set,
 // so that every Rollback swaps the two, and no dwell time.
 func newSwapRig(t testing.TB, sample string) *cmRig {
-	r := newCMRig(t, cmRigOptions{repl: []string{"sample: 100ms", "sample: " + sample}, active: "steady", dwell: -1, seed: 11,
+	// Without an initial covariance the fixed gains start settled, with no
+	// acquisition (estimator.Filter): every tick is one set's arithmetic.
+	r := newCMRig(t, cmRigOptions{repl: []string{"sample: 100ms", "sample: " + sample, "initial:\n  std: [2, 1]\n", ""}, active: "steady", dwell: -1, seed: 11,
 		sets: []string{"steady", "fast"}})
 	if _, err := r.c.Load(cmGains(t, r.plant, "fast", "", "steady", "fast"), "test", Selection{}, TriggerControl, Origin{}); err != nil {
 		t.Fatal(err)

@@ -13,6 +13,7 @@ import (
 	"gonum.org/v1/gonum/mat"
 
 	"surmise/config"
+	"surmise/daemon/check"
 )
 
 // TestCheckGolden compares check's report, text and JSON, with the golden
@@ -45,10 +46,10 @@ func TestCheckGolden(t *testing.T) {
 	}
 }
 
-func checkJSON(t *testing.T, args ...string) (*checkReport, int) {
+func checkJSON(t *testing.T, args ...string) (*check.Report, int) {
 	t.Helper()
 	out, errOut, code := cli(t, append([]string{"check", "--json"}, args...)...)
-	var rep checkReport
+	var rep check.Report
 	if err := json.Unmarshal([]byte(out), &rep); err != nil {
 		t.Fatalf("check --json %v printed no JSON report (%v); stderr: %s", args, err, errOut)
 	}
@@ -175,7 +176,7 @@ func TestCheckUndetectable(t *testing.T) {
 	if code != 1 || rep.CanRun {
 		t.Fatalf("exit status %d, can_run %v; want 1, false", code, rep.CanRun)
 	}
-	for _, f := range []formObservability{rep.Observability.Prediction, rep.Observability.Current} {
+	for _, f := range []check.Form{rep.Observability.Prediction, rep.Observability.Current} {
 		if f.Observable || f.Detectable || f.Rank != 2 {
 			t.Errorf("%s: observable %v, detectable %v, rank %d; want false, false, 2", f.Pair, f.Observable, f.Detectable, f.Rank)
 		}
@@ -251,49 +252,5 @@ func TestCheckConfigErrors(t *testing.T) {
 	}
 	if !regexp.MustCompile(`^` + regexp.QuoteMeta(path) + `:\d+:\d+: model`).MatchString(errOut) {
 		t.Errorf("stderr %q: want the config error with its position", errOut)
-	}
-}
-
-// TestEigenKinds checks the description of single eigenvalues: a
-// continuous-time pole s sampled at Ts becomes λ = e^{s·Ts} (zero-order
-// hold, common practice), so a mode e^{−t/τ}·cos(ωt) has time constant τ and
-// period 2π/ω.
-func TestEigenKinds(t *testing.T) {
-	const ts = 0.5
-	inf := math.Inf(1)
-	for _, tc := range []struct {
-		name        string
-		l           complex128
-		kind        string
-		tau, period float64 // +Inf: null in the report
-	}{
-		{"deadbeat", 0, "deadbeat", inf, inf},
-		{"integrator", 1, "integrator", inf, inf},
-		{"alternating on the unit circle", -1, "marginal", inf, 2 * ts},
-		{"undamped oscillation", cmplx.Exp(complex(0, 0.5*ts)), "marginal", inf, 2 * math.Pi / 0.5},
-		{"damped oscillation, τ = 10 s, ω = 0.5 rad/s", cmplx.Exp(complex(-0.1*ts, 0.5*ts)), "stable", 10, 2 * math.Pi / 0.5},
-		{"lag, τ = 2 s", complex(math.Exp(-ts/2), 0), "stable", 2, inf},
-		{"negative real, alternating", -0.5, "stable", -ts / math.Log(0.5), 2 * ts},
-		{"unstable, grows ×e in 4 s", complex(math.Exp(ts/4), 0), "unstable", 4, inf},
-	} {
-		e := eigen(tc.l, ts)
-		if e.Kind != tc.kind {
-			t.Errorf("%s: kind %q, want %q", tc.name, e.Kind, tc.kind)
-		}
-		for _, c := range []struct {
-			what string
-			got  *float64
-			want float64
-		}{{"time constant", e.TimeConstantSeconds, tc.tau}, {"period", e.PeriodSeconds, tc.period}} {
-			switch {
-			case c.got == nil && math.IsInf(c.want, 1):
-			case c.got == nil:
-				t.Errorf("%s: no %s, want %v", tc.name, c.what, c.want)
-			case math.IsInf(c.want, 1):
-				t.Errorf("%s: %s %v, want none", tc.name, c.what, *c.got)
-			case math.Abs(*c.got-c.want) > 1e-9*c.want:
-				t.Errorf("%s: %s %v, want %v", tc.name, c.what, *c.got, c.want)
-			}
-		}
 	}
 }

@@ -236,7 +236,7 @@ func describeDemo(w io.Writer, plant *config.Plant, gains *config.GainsFile, ep 
 	for _, wi := range plant.Outputs {
 		fmt.Fprintf(w, "            output %-13s on %s\n", wi.Signal, wi.Subject)
 	}
-	fmt.Fprintf(w, "            truth  every state   on %s\n", daemon.TruthSubject(plant, "<state>"))
+	fmt.Fprintf(w, "            truth  every state   on %s\n", plant.TruthSubject("<state>"))
 	est := daemon.EstimateSubject(plant)
 	fmt.Fprintf(w, "estimator %s: active %q on %s\n", plant.Name, gains.Active, est)
 	if gains.Candidate != "" {
@@ -245,7 +245,7 @@ func describeDemo(w io.Writer, plant *config.Plant, gains *config.GainsFile, ep 
 	fmt.Fprintf(w, "HTTP      http://%s/  (live page)   /metrics   /healthz   /readyz\n", ep.HTTPAddr)
 	fmt.Fprintf(w, "watch     nats sub --server %s '%s.>'   (any NATS client)\n", ep.BusURL, strings.TrimSuffix(est, ".estimate"))
 	if f.speed == 1 {
-		fmt.Fprintf(w, "record    surmise record --nats %s --subjects 'pilot.hwl.>,%s' --out demo.jsonl\n", ep.BusURL, daemon.TruthSubject(plant, ">"))
+		fmt.Fprintf(w, "record    surmise record --nats %s --subjects 'pilot.hwl.>,%s' --out demo.jsonl\n", ep.BusURL, plant.TruthSubject(">"))
 		fmt.Fprintf(w, "replay    surmise replay testdata/plants/hotwater-loop.yaml --data demo.jsonl --report demo.html\n")
 	}
 	how := "interrupt (Ctrl-C) to stop"

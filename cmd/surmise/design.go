@@ -18,6 +18,7 @@ import (
 	"time"
 
 	"surmise/config"
+	"surmise/daemon/check"
 	"surmise/estimator"
 )
 
@@ -356,19 +357,18 @@ func writeDesignSummary(out io.Writer, plant *config.Plant, g *config.GainsFile,
 		}
 	}
 	fmt.Fprintf(&buf, "%s: %s form, %s\n", set.Name, set.Form, how)
-	outNames := names(md.Outputs)
-	var pts []patternReport
+	var pts []check.Dynamics
 	covered := map[estimator.Pattern]bool{}
 	for _, pg := range set.Gains {
 		covered[pg.Outputs] = true
-		pts = append(pts, pattern(pg.Outputs, outNames, pg.Poles, md.Ts, pg.S != nil))
+		pts = append(pts, check.NewDynamics(pg.Outputs, md.Outputs, pg.Poles, md.Ts, pg.S != nil))
 	}
-	writePatternTable(&buf, "  ", pts)
+	check.WriteDynamics(&buf, "  ", pts)
 	if patterns {
 		var left []string
 		for s := estimator.Pattern(1); s < estimator.FullPattern(p); s++ {
 			if !covered[s] {
-				left = append(left, strings.Join(patternNames(s, outNames), "+"))
+				left = append(left, strings.Join(check.PatternNames(s, md.Outputs), "+"))
 			}
 		}
 		if len(left) > 0 {
@@ -383,6 +383,6 @@ func writeDesignSummary(out io.Writer, plant *config.Plant, g *config.GainsFile,
 	if g.Candidate != "" {
 		roles += ", candidate " + g.Candidate
 	}
-	fmt.Fprintf(&buf, "wrote %s (%s; %s)\n", where, plural(len(g.Sets), "gain set"), roles)
-	out.Write(trimLines(buf.Bytes()))
+	fmt.Fprintf(&buf, "wrote %s (%s; %s)\n", where, fmt.Sprintf("%d %s", len(g.Sets), pluralWord(len(g.Sets), "gain set", "gain sets")), roles)
+	out.Write(buf.Bytes())
 }

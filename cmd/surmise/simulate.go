@@ -164,7 +164,7 @@ func describeSimulation(e *env, plant *config.Plant, sc *simplant.Scenario, seed
 		fmt.Fprintf(e.stdout, "  output %-14s %s\n", w.Signal, w.Subject)
 	}
 	for _, s := range plant.Model.States {
-		fmt.Fprintf(e.stdout, "  truth  %-14s %s\n", s.Name, simplant.TruthSubject(plant, s.Name))
+		fmt.Fprintf(e.stdout, "  truth  %-14s %s\n", s.Name, plant.TruthSubject(s.Name))
 	}
 }
 

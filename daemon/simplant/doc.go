@@ -22,7 +22,7 @@
 // Inputs and outputs go to the subjects the plant file wires them to. The
 // true states go to "<publish prefix>.truth.<state name>", where the
 // publish prefix is the plant's `publish` key (default
-// "surmise.<plant name>"); TruthSubject returns it. Every payload is the
+// "surmise.<plant name>"); config.Plant.TruthSubject returns it. Every payload is the
 // JSON form the daemon decodes, {"value": 61.23, "time": "RFC 3339 with
 // nanoseconds, UTC"}; the time is the sample's time, so a sample whose
 // arrival was delayed still carries the time it was taken.

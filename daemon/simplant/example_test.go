@@ -43,7 +43,7 @@ events:
 			fmt.Println(line)
 		}
 	}
-	fmt.Println(simplant.TruthSubject(plant, "heat_loss"))
+	fmt.Println(plant.TruthSubject("heat_loss"))
 	// Output:
 	// 0s input  pilot.hwl.jc100.out = 6
 	// 0s output pilot.hwl.tt110.pv

@@ -8,7 +8,7 @@ import (
 	"strconv"
 	"time"
 
-	"surmise/daemon"
+	"surmise/config"
 	"surmise/daemon/recording"
 )
 
@@ -143,15 +143,10 @@ func WriteRecording(w *recording.Writer, st *Stream, clk Clock, length time.Dura
 	}
 }
 
-// TruthColumn is the column name of the true value of a state in a CSV
-// written by WriteCSV: "truth.<state>" (daemon.TruthColumn, which a replay
-// uses to find them).
-func TruthColumn(state string) string { return daemon.TruthColumn(state) }
-
 // WriteCSV writes the samples before length (plant time) of sim as a
 // historian-style CSV: a "time" column (RFC 3339 with nanoseconds, UTC, the
 // sample's time on clk), one column per input and output (blank where the
-// scenario drops a sample), then one column per true state (TruthColumn).
+// scenario drops a sample), then one column per true state (config.TruthColumn).
 // A historian stores sample times, so jitter does not show.
 func WriteCSV(w io.Writer, sim *Sim, clk Clock, length time.Duration) (Stats, error) {
 	if clk.Speed == 0 {
@@ -161,7 +156,7 @@ func WriteCSV(w io.Writer, sim *Sim, clk Clock, length time.Duration) (Stats, er
 	header := []string{"time"}
 	header = append(header, sim.names[:sim.m+sim.p]...)
 	for _, name := range sim.names[sim.m+sim.p:] {
-		header = append(header, TruthColumn(name))
+		header = append(header, config.TruthColumn(name))
 	}
 	if err := cw.Write(header); err != nil {
 		return Stats{}, fmt.Errorf("simplant: writing CSV: %w", err)

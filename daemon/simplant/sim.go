@@ -9,7 +9,6 @@ import (
 	"gonum.org/v1/gonum/mat"
 
 	"surmise/config"
-	"surmise/daemon"
 	"surmise/estimator"
 )
 
@@ -20,7 +19,7 @@ type Role uint8
 const (
 	Input  Role = iota + 1 // a plant input, on its wired subject
 	Output                 // a measurement, on its wired subject
-	Truth                  // a true state, on TruthSubject
+	Truth                  // a true state, on config.Plant.TruthSubject
 )
 
 // String returns "input", "output" or "truth".
@@ -50,13 +49,6 @@ type Message struct {
 
 // Arrival returns when the message arrives, from the start of the run.
 func (m *Message) Arrival() time.Duration { return m.At + m.Delay }
-
-// TruthSubject returns the subject the true value of state is published on:
-// "<publish prefix>.truth.<state>".
-// It is daemon.TruthSubject, which a replay uses to find them.
-func TruthSubject(plant *config.Plant, state string) string {
-	return daemon.TruthSubject(plant, state)
-}
 
 // Options are the optional settings of a Sim. The zero value is seed 0 and
 // the plant file's initial state.
@@ -174,7 +166,7 @@ func New(plant *config.Plant, sc *Scenario, opts Options) (*Sim, error) {
 		if i < len(md.States) && md.States[i].Name != "" {
 			name = md.States[i].Name
 		}
-		s.subjects, s.names = append(s.subjects, TruthSubject(plant, name)), append(s.names, name)
+		s.subjects, s.names = append(s.subjects, plant.TruthSubject(name)), append(s.names, name)
 	}
 	phase := rand.New(rand.NewPCG(opts.Seed, opts.Seed^0xbb67ae8584caa73b))
 	for _, ev := range sc.Events {

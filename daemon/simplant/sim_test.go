@@ -348,15 +348,11 @@ func TestSimAllocs(t *testing.T) {
 	}
 }
 
-// TestTruthSubject checks the documented subject of the true states.
+// TestTruthSubject checks the subject the demo plant's true states go to.
 func TestTruthSubject(t *testing.T) {
 	plant := demoPlant(t)
-	if got := TruthSubject(plant, "heat_loss"); got != "surmise.hotwater-loop.truth.heat_loss" {
+	if got := plant.TruthSubject("heat_loss"); got != "surmise.hotwater-loop.truth.heat_loss" {
 		t.Errorf("got %q", got)
-	}
-	p := &config.Plant{Name: "dryer"}
-	if got := TruthSubject(p, "x1"); got != "surmise.dryer.truth.x1" {
-		t.Errorf("without a publish key: got %q", got)
 	}
 }
 
