@@ -77,6 +77,11 @@ type Options struct {
 	// means DefaultInstance().
 	Instance string
 
+	// Fleet, when set, makes the daemon a member of a fleet: it runs the
+	// estimators of the fleet's bucket that fall to it (see FleetOptions),
+	// and Plants must be empty. It needs a NATS server with JetStream.
+	Fleet *FleetOptions
+
 	// Metrics is how many series each estimator has: MetricsFull (the
 	// zero value) or, for a fleet of many estimators, MetricsSummary.
 	Metrics MetricsLevel
@@ -154,8 +159,21 @@ func (o *Options) setDefaults() {
 // validate checks o after setDefaults and returns every problem found.
 func (o *Options) validate() error {
 	var errs []error
-	if len(o.Plants) == 0 {
+	switch f := o.Fleet; {
+	case f == nil && len(o.Plants) == 0:
 		errs = append(errs, errors.New("no plant to run"))
+	case f != nil && len(o.Plants) > 0:
+		errs = append(errs, fmt.Errorf("fleet %s: a fleet daemon runs the plants of its bucket, not plant files", f.Name))
+	case f != nil:
+		if err := CheckFleetName(f.Name); err != nil {
+			errs = append(errs, err)
+		}
+		if !instanceName.MatchString(o.Instance) {
+			errs = append(errs, fmt.Errorf("instance %q: in a fleet, want letters, digits, '-', '_', '=' or '.' (at most 128)", o.Instance))
+		}
+		if f.LeaseTTL != 0 && f.LeaseTTL < time.Second || f.CheckpointEvery < 0 || f.Replicas < 0 {
+			errs = append(errs, fmt.Errorf("fleet %s: lease TTL %v (want 0 or at least 1 s), checkpoint interval %v, replicas %d", f.Name, f.LeaseTTL, f.CheckpointEvery, f.Replicas))
+		}
 	}
 	seen := map[string]bool{}
 	for i, p := range o.Plants {
@@ -247,6 +265,7 @@ type Daemon struct {
 	ns          *server.Server // the embedded server, when it is ours
 	tempState   string         // a temporary state directory to remove
 	bus         *Bus
+	fleet       *fleetRunner  // in a fleet (fleet_run.go)
 	router      *sampleRouter // the samples' dispatch path (dispatch.go)
 	schedCancel context.CancelFunc
 	schedDone   chan struct{}
@@ -306,7 +325,7 @@ func New(opts Options) (*Daemon, error) {
 	d.http, err = NewHTTPServer(HTTPOptions{
 		Addr:      opts.Listen,
 		Gatherer:  reg,
-		LastTick:  d.oldestTick,
+		LastTick:  d.lastTick,
 		Staleness: stallLimit(longest),
 		Ready:     d.missing,
 		Log:       d.log,
@@ -332,8 +351,19 @@ func newMetrics(reg prometheus.Registerer, level MetricsLevel) (m *Metrics, err 
 	return NewMetricsLevel(reg, level), nil
 }
 
-// Estimators returns the daemon's estimators, in the order of Options.Plants.
-func (d *Daemon) Estimators() []*Estimator { return slices.Clone(d.estimators) }
+// Estimators returns the daemon's estimators, in the order of
+// Options.Plants; in a fleet, the estimators it runs now, by name.
+func (d *Daemon) Estimators() []*Estimator { return d.all() }
+
+// all returns the estimators of the plant files and those the daemon runs
+// for its fleet now.
+func (d *Daemon) all() []*Estimator {
+	out := slices.Clone(d.estimators)
+	if d.fleet != nil {
+		out = append(out, d.fleet.runningList()...)
+	}
+	return out
+}
 
 // Metrics returns the daemon's metrics.
 func (d *Daemon) Metrics() *Metrics { return d.metrics }
@@ -441,6 +471,18 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 		}
 	}
 
+	// The fleet is set up before anything else may look at d.fleet (the
+	// HTTP server's health checks); its estimators start ticking once the
+	// scheduler runs.
+	if d.opts.Fleet != nil {
+		ctx, cancel := context.WithTimeout(context.Background(), drainTimeout)
+		err := d.startFleet(ctx, g)
+		cancel()
+		if err != nil {
+			return ep, err
+		}
+	}
+
 	if err := d.http.Listen(); err != nil {
 		return ep, err
 	}
@@ -476,6 +518,11 @@ func (d *Daemon) shutdown(g *Group) error {
 	}
 	d.log.Info("daemon stopping")
 	var errs []error
+	if d.fleet != nil {
+		// While the ticks still run: each estimator hands over a last
+		// checkpoint, and the leases are released for the others.
+		d.fleet.stopAll()
+	}
 	if d.schedCancel != nil {
 		d.schedCancel()
 		<-d.schedDone
@@ -572,7 +619,7 @@ func (d *Daemon) Healthy() error {
 	}
 	now := d.now()
 	var errs []error
-	for _, e := range d.estimators {
+	for _, e := range d.all() {
 		last := e.lastTick.Load()
 		if last == 0 {
 			last = sched
@@ -584,6 +631,19 @@ func (d *Daemon) Healthy() error {
 	return errors.Join(errs...)
 }
 
+// lastTick is what /healthz judges: the oldest tick (oldestTick), or, in a
+// fleet, whose estimators and periods come and go, now while Healthy and
+// the zero time when not.
+func (d *Daemon) lastTick() time.Time {
+	if d.opts.Fleet == nil {
+		return d.oldestTick()
+	}
+	if d.Healthy() != nil {
+		return time.Time{}
+	}
+	return time.Now()
+}
+
 // oldestTick returns the start of the oldest of the estimators' latest
 // ticks, counting the start of the scheduler for an estimator that has not
 // ticked yet, and now while the daemon is starting: /healthz fails when it
@@ -593,8 +653,12 @@ func (d *Daemon) oldestTick() time.Time {
 	if sched == 0 {
 		return time.Now()
 	}
+	all := d.all()
+	if len(all) == 0 {
+		return time.Now() // a fleet daemon with nothing to run yet
+	}
 	oldest := int64(0)
-	for i, e := range d.estimators {
+	for i, e := range all {
 		last := e.lastTick.Load()
 		if last == 0 {
 			last = sched
@@ -633,7 +697,7 @@ func (d *Daemon) missing() []string {
 	case !d.busConnected():
 		m = append(m, "bus not connected")
 	}
-	for _, e := range d.estimators {
+	for _, e := range d.all() {
 		if !e.gainsOK.Load() {
 			m = append(m, "estimator "+e.name+": gains not valid")
 		}

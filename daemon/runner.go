@@ -32,6 +32,7 @@ type Estimator struct {
 	metrics *EstimatorMetrics
 	signals []signal             // the engine's signals: inputs, then outputs
 	subs    []*nats.Subscription // one per signal while subscribed (dispatch.go)
+	fleet   *fleetLease          // its ownership in a fleet (fleet_run.go); nil outside one
 
 	gains   atomic.Pointer[config.GainsFile]
 	gainsOK atomic.Bool
@@ -163,6 +164,9 @@ func (e *Estimator) tick(t Tick) {
 	e.engine.Tick(t.Due, e.est)
 	e.payload = e.est.AppendJSON(e.payload[:0])
 	connected := d.busConnected()
+	if e.fleet != nil && !e.fleetTick() {
+		connected = false // not ours to publish (any more)
+	}
 	if connected {
 		// With the reconnect buffer off, Publish fails rather than queue
 		// when the connection dropped since IsConnected: nothing stale is

@@ -19,6 +19,7 @@ import (
 )
 
 const runSynopsis = `[flags] PLANT.yaml [PLANT.yaml …]
+       surmise run --fleet NAME --nats URL [flags]
 
 Runs one estimator per plant file on the NATS bus: samples arrive on the
 subjects the plant file wires, one estimate per sample period leaves on
@@ -40,6 +41,11 @@ file runs in shadow on "<publish>.shadow.estimate"; 'surmise ctl' promotes it,
 rolls back, loads gains and resets the state over the bus. A changed plant
 file is refused until a restart.
 
+With --fleet NAME and no plant files it joins the fleet NAME: it runs its
+share of the estimators stored with 'surmise fleet put', one daemon per
+estimator (a lease in the fleet's bucket), takes over those of a daemon that
+stops within about 8 s, and starts each from its owner's last checkpoint.
+
 SIGINT or SIGTERM stops it after the tick in progress.`
 
 // runFlags are the flags of `surmise run`. The names are fixed: the systemd
@@ -53,6 +59,7 @@ type runFlags struct {
 	logFormat, logLevel  string
 	stateDir             string
 	metrics              string
+	fleet, instance      string
 }
 
 func runRun(ctx context.Context, e *env, args []string) error {
@@ -70,12 +77,17 @@ func runRun(ctx context.Context, e *env, args []string) error {
 	flags.StringVar(&f.logLevel, "log-level", "info", "log `level`: debug, info, warn or error")
 	flags.StringVar(&f.stateDir, "state-dir", "", "`directory` for the embedded server's JetStream store (default: a temporary one, removed at exit)")
 	flags.StringVar(&f.metrics, "metrics", "full", "per-estimator metric `level`: full (every series) or summary (health only, for many estimators)")
+	flags.StringVar(&f.fleet, "fleet", "", "join the fleet `NAME`: run its share of the estimators of its bucket instead of plant files")
+	flags.StringVar(&f.instance, "instance", "", "`name` of this daemon in its estimates and its fleet (default host-pid)")
 	pos, err := parseArgs(flags, args)
 	if err != nil {
 		return err
 	}
-	if len(pos) == 0 {
-		return usageError("want at least one plant file")
+	switch {
+	case f.fleet == "" && len(pos) == 0:
+		return usageError("want at least one plant file, or --fleet NAME")
+	case f.fleet != "" && len(pos) > 0:
+		return usageError("--fleet takes its plants from the fleet's bucket: no plant files")
 	}
 	explicit := map[string]bool{}
 	flags.Visit(func(fl *flag.Flag) { explicit[fl.Name] = true })
@@ -94,8 +106,14 @@ func runRun(ctx context.Context, e *env, args []string) error {
 		return usageError("--creds, --nkey and the --tls-* flags are for a server given with --nats")
 	}
 
-	plants, err := loadPlants(e.stderr, pos)
-	if err != nil {
+	if f.instance == "" {
+		f.instance = daemon.DefaultInstance()
+	}
+	var plants []daemon.PlantSpec
+	var fleet *daemon.FleetOptions
+	if f.fleet != "" {
+		fleet = &daemon.FleetOptions{Name: f.fleet}
+	} else if plants, err = loadPlants(e.stderr, pos); err != nil {
 		return err
 	}
 
@@ -118,6 +136,8 @@ func runRun(ctx context.Context, e *env, args []string) error {
 		Logger:       log,
 		StateDir:     f.stateDir,
 		Metrics:      level,
+		Fleet:        fleet,
+		Instance:     f.instance,
 		Started: func(ep daemon.Endpoints) {
 			where := "connecting to " + ep.BusURL
 			if ep.Embedded {
@@ -129,6 +149,9 @@ func runRun(ctx context.Context, e *env, args []string) error {
 			}
 			fmt.Fprintf(e.stdout, "bus:  %s\n", where)
 			fmt.Fprintf(e.stdout, "http: http://%s/metrics /healthz /readyz\n", ep.HTTPAddr)
+			if fleet != nil {
+				fmt.Fprintf(e.stdout, "fleet %s: instance %s\n", fleet.Name, f.instance)
+			}
 			for _, p := range plants {
 				fmt.Fprintf(e.stdout, "estimator %s: every %v, gains %q, estimates on %s\n",
 					p.Plant.Name, time.Duration(p.Plant.Model.Ts*float64(time.Second)), p.Gains.Active, daemon.EstimateSubject(p.Plant))
