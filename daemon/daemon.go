@@ -475,12 +475,7 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 	// HTTP server's health checks); its estimators start ticking once the
 	// scheduler runs.
 	if d.opts.Fleet != nil {
-		ctx, cancel := context.WithTimeout(context.Background(), drainTimeout)
-		err := d.startFleet(ctx, g)
-		cancel()
-		if err != nil {
-			return ep, err
-		}
+		d.startFleet(g)
 	}
 
 	if err := d.http.Listen(); err != nil {
@@ -696,6 +691,8 @@ func (d *Daemon) missing() []string {
 		m = append(m, "starting")
 	case !d.busConnected():
 		m = append(m, "bus not connected")
+	case d.fleet != nil && !d.fleet.joined.Load():
+		m = append(m, "fleet "+d.opts.Fleet.Name+": its buckets are not available yet")
 	}
 	for _, e := range d.all() {
 		if !e.gainsOK.Load() {

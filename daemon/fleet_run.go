@@ -66,6 +66,7 @@ type fleetRunner struct {
 	self  string // instance
 
 	kick   chan struct{}
+	joined atomic.Bool        // the buckets are open (open)
 	cancel context.CancelFunc // stops run
 	done   chan struct{}      // closed when run has returned
 
@@ -103,16 +104,14 @@ type fleetLease struct {
 	latest  atomic.Pointer[Checkpoint]
 }
 
-func (d *Daemon) startFleet(ctx context.Context, g *Group) error {
+// startFleet starts the fleet's goroutines. It does not wait for the
+// buckets: the fleet goroutine opens them, retrying every second while the
+// servers cannot serve them (a node restarting, JetStream electing its
+// leaders), so that a daemon may start before its cluster is whole.
+func (d *Daemon) startFleet(g *Group) {
 	fo := d.opts.Fleet
-	nc := d.bus.Conn()
-	store, err := OpenFleet(ctx, nc, fo.Name, fo.Replicas, fo.LeaseTTL)
-	if err != nil {
-		return err
-	}
-	host, _ := os.Hostname()
 	f := &fleetRunner{
-		d: d, store: store, self: d.opts.Instance,
+		d: d, self: d.opts.Instance,
 		every:   fo.CheckpointEvery,
 		kick:    make(chan struct{}, 1),
 		specs:   map[string]*fleetSpec{},
@@ -123,16 +122,6 @@ func (d *Daemon) startFleet(ctx context.Context, g *Group) error {
 	if f.every == 0 {
 		f.every = DefaultCheckpointEvery
 	}
-	_, leases, _ := FleetBuckets(fo.Name)
-	f.mgr, err = lease.Open(ctx, nc, lease.Config{
-		Bucket:  leases,
-		Owner:   lease.Owner{Instance: d.opts.Instance, Host: host, PID: os.Getpid(), Started: time.Now().UTC()},
-		Changed: func(string, bool) { f.poke() },
-		Log:     d.log,
-	})
-	if err != nil {
-		return fmt.Errorf("fleet %s: %w", fo.Name, err)
-	}
 	d.fleet = f
 	runCtx, cancel := context.WithCancel(context.Background())
 	f.cancel, f.done = cancel, make(chan struct{})
@@ -140,10 +129,50 @@ func (d *Daemon) startFleet(ctx context.Context, g *Group) error {
 		defer close(f.done)
 		stop := context.AfterFunc(ctx, cancel)
 		defer stop()
+		if !f.open(runCtx) {
+			return nil
+		}
+		var wg sync.WaitGroup
+		wg.Go(func() { f.checkpoints(runCtx) })
+		defer wg.Wait()
 		return f.run(runCtx)
 	})
-	g.Go("checkpoints", f.checkpoints)
-	return nil
+}
+
+// open binds the fleet's buckets and opens the lease manager, retrying
+// until it succeeds or ctx is done (false).
+func (f *fleetRunner) open(ctx context.Context) bool {
+	fo, d := f.d.opts.Fleet, f.d
+	host, _ := os.Hostname()
+	_, leases, _ := FleetBuckets(fo.Name)
+	for warned := false; ; {
+		octx, cancel := context.WithTimeout(ctx, drainTimeout)
+		store, err := OpenFleet(octx, d.bus.Conn(), fo.Name, fo.Replicas, fo.LeaseTTL)
+		if err == nil {
+			f.mgr, err = lease.Open(octx, d.bus.Conn(), lease.Config{
+				Bucket:  leases,
+				Owner:   lease.Owner{Instance: d.opts.Instance, Host: host, PID: os.Getpid(), Started: time.Now().UTC()},
+				Changed: func(string, bool) { f.poke() },
+				Log:     d.log,
+			})
+		}
+		cancel()
+		if err == nil {
+			f.store = store
+			f.joined.Store(true)
+			d.log.Info("fleet joined", "fleet", fo.Name, "instance", d.opts.Instance, "replicas", store.Replicas(), "lease_ttl", f.mgr.TTL())
+			return true
+		}
+		if !warned {
+			d.log.Warn("fleet: buckets not available yet, retrying every second", "fleet", fo.Name, "error", err)
+			warned = true
+		}
+		select {
+		case <-ctx.Done():
+			return false
+		case <-time.After(time.Second):
+		}
+	}
 }
 
 func (f *fleetRunner) poke() {
@@ -414,14 +443,14 @@ func (f *fleetRunner) stop(ctx context.Context, name string, o *fleetEst, releas
 
 // checkpoints saves the running estimators' latest checkpoints every
 // CheckpointEvery until ctx is done.
-func (f *fleetRunner) checkpoints(ctx context.Context) error {
+func (f *fleetRunner) checkpoints(ctx context.Context) {
 	t := time.NewTicker(f.every)
 	defer t.Stop()
 	saved := map[string]uint64{}
 	for {
 		select {
 		case <-ctx.Done():
-			return nil
+			return
 		case <-t.C:
 		}
 		for _, e := range f.runningList() {
@@ -465,6 +494,9 @@ func (f *fleetRunner) stopAll() {
 	}
 	for name, o := range f.owned {
 		f.stop(ctx, name, o, true)
+	}
+	if f.mgr == nil {
+		return // never joined
 	}
 	if err := f.mgr.Close(ctx); err != nil && !errors.Is(err, lease.ErrClosed) {
 		f.d.log.Warn("fleet: releasing the leases", "error", err)
