@@ -523,6 +523,9 @@ func (d *Daemon) shutdown(g *Group) error {
 		<-d.schedDone
 	}
 	d.stopCommissioning()
+	if d.router != nil {
+		d.router.close()
+	}
 	if d.bus != nil {
 		if err := d.bus.Close(drainTimeout); err != nil {
 			errs = append(errs, err)

@@ -137,3 +137,18 @@ func (r *sampleRouter) unsubscribe(e *Estimator) {
 	}
 	e.subs = nil
 }
+
+// close ends every subscription of the router. The daemon calls it once
+// the ticks have stopped, before it drains the connection: the samples that
+// would still arrive have no tick left to use them, and draining tens of
+// thousands of subscriptions one by one takes the client seconds.
+func (r *sampleRouter) close() {
+	for _, sh := range r.shards {
+		sh.mu.Lock()
+		for sub := range sh.routes {
+			sub.Unsubscribe()
+		}
+		clear(sh.routes)
+		sh.mu.Unlock()
+	}
+}

@@ -213,14 +213,12 @@ func (s *FleetStore) Names(ctx context.Context) ([]string, error) {
 	if err != nil {
 		return nil, fmt.Errorf("fleet %s: %w", s.name, err)
 	}
+	// The lister stops by itself once it has delivered every key.
 	var names []string
 	for k := range lister.Keys() {
 		if n, ok := strings.CutPrefix(k, fleetPlantKey); ok {
 			names = append(names, n)
 		}
-	}
-	if err := lister.Stop(); err != nil && !errors.Is(err, jetstream.ErrNoKeysFound) {
-		return nil, fmt.Errorf("fleet %s: %w", s.name, err)
 	}
 	slices.Sort(names)
 	return names, nil
