@@ -10,6 +10,7 @@ import (
 	"strconv"
 	"strings"
 	"time"
+	"unicode/utf8"
 
 	"gopkg.in/yaml.v3"
 )
@@ -110,7 +111,43 @@ func (d *decoder) document(data []byte, what string) *yaml.Node {
 		d.errorf(root, "", "empty document: want a %s", what)
 		return nil
 	}
+	if root.Kind != yaml.MappingNode {
+		msg := fmt.Sprintf("not a %s file: want a YAML mapping of keys, got %s", what, DescribeNode(root))
+		if looksLikeCSV(data) {
+			msg = fmt.Sprintf("not a %s file: this looks like a CSV file (a recording for surmise replay --data?)", what)
+		}
+		d.errorf(root, "", "%s", msg)
+		return nil
+	}
+	if other, hint := otherKind(root, what); other != "" {
+		d.errorf(root, "", "this is a %s file, not a %s file: %s", other, what, hint)
+		return nil
+	}
 	return root
+}
+
+// looksLikeCSV reports whether data starts like comma- or semicolon-separated
+// values: a first line with separators and no YAML "key: value".
+func looksLikeCSV(data []byte) bool {
+	line, _, _ := bytes.Cut(data, []byte("\n"))
+	return (bytes.Count(line, []byte(",")) >= 2 || bytes.Count(line, []byte(";")) >= 2) && !bytes.Contains(line, []byte(": "))
+}
+
+// otherKind recognises a gains file given where a plant file is wanted and
+// the reverse, by their required top-level keys, and says what to give
+// instead; "" when root is not the other kind.
+func otherKind(root *yaml.Node, what string) (other, hint string) {
+	keys := map[string]bool{}
+	for i := 0; i+1 < len(root.Content); i += 2 {
+		keys[root.Content[i].Value] = true
+	}
+	switch {
+	case what == "plant" && keys["sets"] && keys["fingerprint"] && !keys["model"]:
+		return "gains", "give the plant file (its gains: key names this gains file)"
+	case what == "gains" && keys["model"] && keys["states"] && !keys["sets"]:
+		return "plant", "give the gains file the plant file's gains: key names (write one with surmise design)"
+	}
+	return "", ""
 }
 
 // resolve follows aliases and counts the node against the budget; it returns
@@ -153,6 +190,13 @@ func DescribeNode(n *yaml.Node) string {
 		case "!!bool":
 			return "the boolean " + n.Value
 		case "!!str":
+			if len(n.Value) > 60 {
+				cut := 48
+				for cut > 0 && !utf8.RuneStart(n.Value[cut]) {
+					cut--
+				}
+				return fmt.Sprintf("%s… (a text of %d bytes)", strconv.Quote(n.Value[:cut]), len(n.Value))
+			}
 			return strconv.Quote(n.Value)
 		}
 		return fmt.Sprintf("%s %q", n.Tag, n.Value)

@@ -104,10 +104,10 @@
 //	# Gain sets written by surmise design for the plant "double-integrator".
 //	fingerprint: sha256:876c…  # required: Fingerprint of the plant's discrete model
 //	plant: double-integrator  # optional, informative
-//	active: place-half        # required: the set the estimator runs
+//	active: poles-half        # required: the set the estimator runs
 //	candidate: kf             # optional: a set run in shadow, not the active one
 //	sets:                     # required, at least one; names unique
-//	  - name: place-half      # letters, digits, '.', '-', '_' (≤ 63); the gains metric label
+//	  - name: poles-half      # letters, digits, '.', '-', '_' (≤ 63); the gains metric label
 //	    form: prediction      # prediction, current or kalman (see estimator.Form)
 //	    gains:                # prediction and current forms: one entry per output pattern,
 //	                          # one of them for all outputs
@@ -118,7 +118,7 @@
 //	        poles: ["0.5", "0.5"]  # optional: the achieved error-dynamics eigenvalues,
 //	                          # n of them, as strings "0.81" or "0.5+0.2i" (numbers accepted)
 //	    provenance:           # required
-//	      method: place       # required: how the set was designed (place, kalman, ...)
+//	      method: poles       # required: how the set was designed (poles, kalman, ...)
 //	      poles: ["0.5", "0.5"]  # optional: the poles that were requested
 //	      factor: 2           # optional: a design factor
 //	      created: "2025-06-01T14:03:00Z"  # optional: RFC 3339

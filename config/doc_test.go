@@ -59,7 +59,7 @@ func TestDocExamples(t *testing.T) {
 	if err != nil {
 		t.Fatalf("the gains example of doc.go: %v", err)
 	}
-	if g.Active != "place-half" || len(g.Sets) != 2 {
+	if g.Active != "poles-half" || len(g.Sets) != 2 {
 		t.Errorf("doc.go gains: active %q, %d sets", g.Active, len(g.Sets))
 	}
 }

@@ -68,15 +68,15 @@ func ExampleParseGains() {
 	// Poles 0.5, 0.5 with the position measured: L = [1, 2.5] (the closed
 	// form for the double integrator with T = 0.1).
 	file := `fingerprint: ` + config.Fingerprint(plant.Model) + `
-active: place
+active: poles
 sets:
-  - name: place
+  - name: poles
     form: prediction
     gains:
       - outputs: [pos]
         L: [[1], [2.5]]
         poles: ["0.5", "0.5"]
-    provenance: {method: place, poles: ["0.5", "0.5"]}
+    provenance: {method: poles, poles: ["0.5", "0.5"]}
 `
 	gains, err := config.ParseGains("cart.gains.yaml", []byte(file), plant)
 	if err != nil {
@@ -92,7 +92,7 @@ sets:
 	_, err = config.ParseGains("cart.gains.yaml", []byte(file), slow)
 	fmt.Println(strings.Contains(err.Error(), "designed for a different model"))
 	// Output:
-	// place prediction place
+	// poles prediction poles
 	// L = [1 2.5]
 	// true
 }

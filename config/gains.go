@@ -45,8 +45,10 @@ type NamedSet struct {
 
 // Provenance records how a gain set was obtained (key `provenance` of a set).
 type Provenance struct {
-	// Method is how the set was designed, a short word such as "place",
-	// "kalman" or "rule-of-thumb" (key `method`, required).
+	// Method is how the set was designed, a short word such as "poles"
+	// (pole placement), "kalman" or "rule-of-thumb" (key `method`,
+	// required). Files written before the word "poles" say "place": that
+	// is read as "poles".
 	Method string
 	// Poles are the error-dynamics eigenvalues that were requested (key
 	// `poles`, optional), written like the achieved poles of a gain.
@@ -94,7 +96,7 @@ func (g *GainsFile) Set(name string) *NamedSet {
 func LoadGains(path string, plant *Plant) (*GainsFile, error) {
 	data, err := os.ReadFile(path)
 	if err != nil {
-		return nil, fmt.Errorf("config: read gains file: %w", err)
+		return nil, fmt.Errorf("cannot read the gains file: %w", err)
 	}
 	return ParseGains(path, data, plant)
 }
@@ -434,6 +436,9 @@ func (w *gainsWalker) provenance(v *yaml.Node, path string) Provenance {
 	d.mapping(v, path, []field{
 		{"method", true, func(v *yaml.Node, fp string) {
 			if s, ok := d.str(v, fp); ok {
+				if s == "place" {
+					s = "poles" // the word earlier versions wrote
+				}
 				pv.Method = s
 				if s == "" {
 					d.errorf(v, fp, "empty method")

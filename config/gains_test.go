@@ -24,14 +24,14 @@ func TestParseGainsCart(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if g.Active != "place-half" || g.Candidate != "kf" || len(g.Sets) != 3 || g.Plant != "double-integrator" {
+	if g.Active != "poles-half" || g.Candidate != "kf" || len(g.Sets) != 3 || g.Plant != "double-integrator" {
 		t.Fatalf("active %q candidate %q, %d sets, plant %q", g.Active, g.Candidate, len(g.Sets), g.Plant)
 	}
-	place := g.Set("place-half")
+	place := g.Set("poles-half")
 	if place == nil || place.Set.Form != estimator.Prediction || len(place.Set.Gains) != 2 {
-		t.Fatalf("place-half = %+v", place)
+		t.Fatalf("poles-half = %+v", place)
 	}
-	// Closed form (REFERENCES.md): double integrator, T = 0.1, poles 0.5, 0.5 → L_p = [1, 2.5].
+	// Closed form (SOURCES.md: double-integrator-placement): double integrator, T = 0.1, poles 0.5, 0.5 → L_p = [1, 2.5].
 	pos := place.Set.Gains[1]
 	if pos.Outputs != 1 || pos.L.At(0, 0) != 1 || pos.L.At(1, 0) != 2.5 {
 		t.Errorf("position-only gain %v %v", pos.Outputs, mat.Formatted(pos.L))
@@ -47,7 +47,7 @@ func TestParseGainsCart(t *testing.T) {
 	}
 	// The file lists the position-only gain first; the gain for all outputs
 	// must come first in the GainSet.
-	cur := g.Set("place-half-current").Set
+	cur := g.Set("poles-half-current").Set
 	if cur.Gains[0].Outputs != estimator.FullPattern(2) || cur.Gains[1].Outputs != 1 {
 		t.Errorf("current-form patterns %v, %v; want the full pattern first", cur.Gains[0].Outputs, cur.Gains[1].Outputs)
 	}
@@ -239,6 +239,30 @@ func TestFormatPole(t *testing.T) {
 	} {
 		if got := formatPole(c.z); got != c.want {
 			t.Errorf("formatPole(%v) = %q, want %q", c.z, got, c.want)
+		}
+	}
+}
+
+// TestParseGainsOldMethodWord: gains files written before the placement
+// method was called "poles" say "method: place"; they still load, and the
+// method reads as "poles".
+func TestParseGainsOldMethodWord(t *testing.T) {
+	plant := mustLoad(t, cartFile)
+	b, err := os.ReadFile(cartGains)
+	if err != nil {
+		t.Fatal(err)
+	}
+	old := strings.ReplaceAll(string(b), "method: poles", "method: place")
+	if old == string(b) {
+		t.Fatal("the fixture has no \"method: poles\" to turn into the old word")
+	}
+	g, err := ParseGains(cartGains, []byte(old), plant)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, ns := range g.Sets {
+		if ns.Provenance.Method != "poles" && ns.Provenance.Method != "kalman" {
+			t.Errorf("set %s: method %q, want the old word read as \"poles\"", ns.Set.Name, ns.Provenance.Method)
 		}
 	}
 }

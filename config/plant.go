@@ -123,7 +123,7 @@ type Wire struct {
 func LoadPlant(path string) (*Plant, error) {
 	data, err := os.ReadFile(path)
 	if err != nil {
-		return nil, fmt.Errorf("config: read plant file: %w", err)
+		return nil, fmt.Errorf("cannot read the plant file: %w", err)
 	}
 	return ParsePlant(path, data)
 }

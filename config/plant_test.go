@@ -52,7 +52,7 @@ func closeTo(got, want mat.Matrix, tol float64) bool {
 
 // TestHotWaterLoop parses the continuous demo plant (discretised by
 // estimator.Discretise) and its discrete variant, whose A, B and Q were
-// computed from the same file by scipy.linalg.expm (zero-order hold and Van
+// computed from the same file (SOURCES.md: hotwater-loop) by scipy.linalg.expm (zero-order hold and Van
 // Loan, cross-checked by quadrature) in testdata/plants/hotwater_loop.py.
 func TestHotWaterLoop(t *testing.T) {
 	cont := mustLoad(t, hotwaterFile)
@@ -241,5 +241,43 @@ func TestFingerprintCovers(t *testing.T) {
 	}
 	if !strings.HasPrefix(fp, "sha256:") || len(fp) != len("sha256:")+64 {
 		t.Errorf("fingerprint %q, want sha256: and 64 hex digits", fp)
+	}
+}
+
+// TestParseWrongKindOfFile: a CSV, a gains file given as a plant file and
+// the reverse each get one short error that says what the file is, not a
+// key error per line or the whole file repeated.
+func TestParseWrongKindOfFile(t *testing.T) {
+	csv := "time,heater_power,tank_outlet\n" + strings.Repeat("2026-01-05T08:00:00Z,7.8,61.05279925908432\n", 500)
+	gains, err := os.ReadFile(cartGains)
+	if err != nil {
+		t.Fatal(err)
+	}
+	plantData, err := os.ReadFile(cartFile)
+	if err != nil {
+		t.Fatal(err)
+	}
+	long := "just some text " + strings.Repeat("x", 300)
+	for _, tc := range []struct {
+		name, want string
+		parse      func() error
+	}{
+		{"CSV as plant", "not a plant file: this looks like a CSV file", func() error { _, err := ParsePlant("run.csv", []byte(csv)); return err }},
+		{"gains as plant", "this is a gains file, not a plant file", func() error { _, err := ParsePlant("g.yaml", gains); return err }},
+		{"long text as plant", `(a text of 315 bytes)`, func() error { _, err := ParsePlant("t.yaml", []byte(long)); return err }},
+		{"plant as gains", "this is a plant file, not a gains file", func() error {
+			_, err := ParseGains("p.yaml", plantData, mustLoad(t, cartFile))
+			return err
+		}},
+	} {
+		err := tc.parse()
+		if err == nil {
+			t.Errorf("%s: no error", tc.name)
+			continue
+		}
+		msg := err.Error()
+		if !strings.Contains(msg, tc.want) || strings.Count(msg, "\n") > 0 || len(msg) > 200 {
+			t.Errorf("%s: %q, want one short line with %q", tc.name, msg, tc.want)
+		}
 	}
 }

@@ -58,6 +58,10 @@ const (
 	// HeaderCandidate (load) names the set to run in shadow instead of the
 	// file's candidate; NoCandidate for none.
 	HeaderCandidate = "Surmise-Candidate"
+	// HeaderSource (load) is the name of the file the gains were read from
+	// on the requester's side (`surmise ctl` sends the path it was given):
+	// messages about the file name it, with line and column.
+	HeaderSource = "Surmise-Source"
 	// HeaderOperator is who the requester says it is (`surmise ctl` sends
 	// user@host). It is recorded as claimed_by in the audit trail and
 	// checked by nothing.
@@ -93,6 +97,50 @@ func StartControl(nc *nats.Conn, comms []*Commissioner) (micro.Service, error) {
 		idx.Add(c)
 	}
 	return StartControlIndex(nc, idx)
+}
+
+// ControlSchema is where the JSON Schema of the control requests and replies
+// is, in the source repository; an endpoint's metadata names the definition
+// of its request and reply in it.
+const ControlSchema = "daemon/schema/control.schema.json"
+
+// controlEndpoint is one verb of the control service: its handler and what
+// `nats micro info surmise` shows of it.
+type controlEndpoint struct {
+	verb        string
+	fn          func(*Commissioner, micro.Request) (any, error)
+	description string
+	request     string // what the request body is, in words
+	reqDef      string // the request's definition in ControlSchema; "" for no body
+	replyDef    string
+}
+
+var controlEndpoints = []controlEndpoint{
+	{VerbStatus, handleStatus, "the estimator's gain sets, latest ticks of both lanes, last reload and recent audit entries",
+		"no body", "", "status-reply"},
+	{VerbLoad, handleLoad, "load a gains file: checked against the running model, then swapped in between two ticks (not written to disk)",
+		"a gains file (YAML); headers Surmise-Set (the set to run), Surmise-Candidate (the set to shadow, or none), Surmise-Source (the file's name, for messages)", "", "load-reply"},
+	{VerbPromote, handlePromote, "make the candidate set active; the previous active set becomes the roll-back target",
+		`JSON {"transfer": "keep-state"|"adopt-state", "confirm": bool}; empty is keep-state`, "promote-request", "promote-reply"},
+	{VerbRollback, handleRollback, "make the previous active set active again, keeping the state",
+		"no body", "", "rollback-reply"},
+	{VerbReset, handleReset, "restart every lane at the operating point or at a given state",
+		`JSON {"state": {name: value}, "std": {name: value}} or {"covariance": [[…]]}; empty is the operating point`, "reset-request", "reset-reply"},
+}
+
+// metadata is the endpoint's metadata in the service's $SRV.INFO reply.
+func (ep controlEndpoint) metadata(estimator string) map[string]string {
+	m := map[string]string{
+		"estimator":    estimator,
+		"description":  ep.description,
+		"request":      ep.request,
+		"reply_schema": ControlSchema + "#/$defs/" + ep.replyDef,
+		"error_schema": ControlSchema + "#/$defs/error",
+	}
+	if ep.reqDef != "" {
+		m["request_schema"] = ControlSchema + "#/$defs/" + ep.reqDef
+	}
+	return m
 }
 
 // respond sends the reply v, or the error err.
@@ -190,7 +238,29 @@ func handleLoad(c *Commissioner, req micro.Request) (any, error) {
 		}
 		sel.Candidate = &v
 	}
-	return c.Load(data, "control request", sel, TriggerControl, origin(req))
+	return c.Load(data, loadSource(h.Get(HeaderSource)), sel, TriggerControl, origin(req))
+}
+
+// sentOverBus ends the source of gains a control request sent.
+const sentOverBus = " (sent over the bus)"
+
+// loadSource is the source recorded for gains a control request sent: the
+// requester's file name (one line, at most 200 bytes) marked as sent over
+// the bus, or "control request" without a name.
+func loadSource(name string) string {
+	name = strings.TrimSpace(strings.Map(func(r rune) rune {
+		if r < ' ' || r == 0x7f {
+			return -1
+		}
+		return r
+	}, name))
+	if name == "" {
+		return "control request"
+	}
+	if len(name) > 200 {
+		name = "…" + name[len(name)-200:]
+	}
+	return name + sentOverBus
 }
 
 func handlePromote(c *Commissioner, req micro.Request) (any, error) {

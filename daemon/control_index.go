@@ -63,18 +63,6 @@ func (x *ControlIndex) Names() []string {
 	return names
 }
 
-// controlVerbs are the verbs of the control service and their handlers.
-var controlVerbs = []struct {
-	verb string
-	fn   func(*Commissioner, micro.Request) (any, error)
-}{
-	{VerbStatus, handleStatus},
-	{VerbLoad, handleLoad},
-	{VerbPromote, handlePromote},
-	{VerbRollback, handleRollback},
-	{VerbReset, handleReset},
-}
-
 // StartControlIndex adds the control service to the connection nc and
 // returns it; Stop it before the connection closes. It has five endpoints
 // whatever the number of estimators (one subscription each, on
@@ -94,8 +82,10 @@ func StartControlIndex(nc *nats.Conn, idx *ControlIndex) (micro.Service, error) 
 		return nil, fmt.Errorf("control service: %w", err)
 	}
 	prefix := ControlRoot + "."
-	for _, ep := range controlVerbs {
+	for _, ep := range controlEndpoints {
 		fn := ep.fn
+		meta := ep.metadata("*")
+		meta["estimator"] = "the estimator is the subject's third token: " + ControlSubject("<estimator>", ep.verb)
 		h := micro.HandlerFunc(func(req micro.Request) {
 			// surmise.control.<estimator>.<verb>: the estimator is the
 			// token between the root and the verb.
@@ -112,7 +102,7 @@ func StartControlIndex(nc *nats.Conn, idx *ControlIndex) (micro.Service, error) 
 			respond(req, v, err)
 		})
 		if err := svc.AddEndpoint(ep.verb, h, micro.WithEndpointSubject(ControlSubject("*", ep.verb)),
-			micro.WithEndpointQueueGroupDisabled()); err != nil {
+			micro.WithEndpointQueueGroupDisabled(), micro.WithEndpointMetadata(meta)); err != nil {
 			svc.Stop()
 			return nil, fmt.Errorf("control service: %s: %w", ep.verb, err)
 		}

@@ -63,9 +63,15 @@ type Options struct {
 	Listen string
 
 	// Logger receives the daemon's log; nil means none. The daemon never
-	// logs per tick, and refused samples at most once per signal every
-	// 10 s.
+	// logs per tick. A refused sample is logged at once with its reason;
+	// further refusals of the same signal within RefusedLogInterval are
+	// counted and summarised in one line (how many, the latest reason) when
+	// the interval is over.
 	Logger *slog.Logger
+
+	// RefusedLogInterval is the shortest time between two log lines about
+	// refused samples of one signal; 0 means 10 s.
+	RefusedLogInterval time.Duration
 
 	// Registry receives the daemon's metrics, and /metrics serves it. Nil
 	// means a new registry, with the Go runtime, process and build
@@ -147,6 +153,9 @@ func (o *Options) setDefaults() {
 	}
 	if o.Instance == "" {
 		o.Instance = DefaultInstance()
+	}
+	if o.RefusedLogInterval <= 0 {
+		o.RefusedLogInterval = badSampleLogEvery
 	}
 	if o.Notify == nil {
 		o.Notify = func(state string) error {

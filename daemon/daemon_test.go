@@ -434,13 +434,13 @@ func TestNotify(t *testing.T) {
 }
 
 // TestBadSamples sends payloads that must be refused: each is counted by
-// its reason, the log says so once per signal per 10 s, and the daemon goes
-// on.
+// its reason, the log says so at once for the first, summarises the others
+// in one line when the interval is over, and the daemon goes on.
 func TestBadSamples(t *testing.T) {
 	spec := demoPlant(t, 20*time.Millisecond)
 	var log syncLog
 	r := startDaemon(t, daemon.Options{Plants: []daemon.PlantSpec{spec}, EmbeddedPort: -1,
-		Logger: slog.New(slog.NewTextHandler(&log, nil))})
+		Logger: slog.New(slog.NewTextHandler(&log, nil)), RefusedLogInterval: 2 * time.Second})
 	nc, err := nats.Connect(r.ep.BusURL)
 	if err != nil {
 		t.Fatal(err)
@@ -475,6 +475,17 @@ func TestBadSamples(t *testing.T) {
 	})
 	if n := strings.Count(log.String(), `msg="sample refused"`); n != 1 {
 		t.Errorf("%d log lines about refused samples, want 1 (rate limited):\n%s", n, log.String())
+	}
+	// The six refused after the first are reported when the interval is
+	// over, though no further sample is refused.
+	checkFor(t, 10*time.Second, 20*time.Millisecond, func() error {
+		if !strings.Contains(log.String(), `msg="samples refused"`) {
+			return errors.New("no summary of the held-back refusals in the log")
+		}
+		return nil
+	})
+	if l := log.String(); !strings.Contains(l, "count=6") || !strings.Contains(l, "latest_reason=range") {
+		t.Errorf("the summary does not say 6 refusals, the latest for range:\n%s", l)
 	}
 	if code, body := httpGet(t, "http://"+r.ep.HTTPAddr.String()+"/healthz"); code != 200 {
 		t.Errorf("/healthz after bad samples: %d %s", code, body)

@@ -14,7 +14,7 @@ import (
 )
 
 // BandProbability is the probability of the two-sided chi-square band that
-// the windowed mean NIS must stay inside (DESIGN.md §3: "suspect").
+// the windowed mean NIS must stay inside; outside it the status is suspect.
 const BandProbability = 0.95
 
 // EngineOptions are the optional parts of an engine. The zero value is an
@@ -119,7 +119,7 @@ type wire struct {
 	hasRange            bool
 }
 
-// Engine turns samples into estimates, one per tick (DESIGN.md §3). It is
+// Engine turns samples into estimates, one per tick (see Tick). It is
 // pure and deterministic: it starts no goroutines and reads no clock; the
 // time of every sample and tick is passed in, so a live run and a replay of
 // the same samples at the same tick times give the same estimates.
@@ -358,7 +358,7 @@ func (e *Engine) applyChanges() {
 }
 
 // Tick runs tick t — the due time given by the scheduler, or replay's virtual
-// clock — and writes its estimate to dst (DESIGN.md §3):
+// clock — and writes its estimate to dst:
 //
 //  1. Inputs: the newest sample with time ≤ t is held. An input whose held
 //     sample is older than its max_age at t, or that was never received

@@ -26,7 +26,7 @@ func ExampleCommissioner() {
 	gains := config.NewGainsFile(plant)
 	gains.Active, gains.Candidate = "placed", "kalman"
 	gains.Sets = []config.NamedSet{
-		{Set: placed, Provenance: config.Provenance{Method: "place"}},
+		{Set: placed, Provenance: config.Provenance{Method: "poles"}},
 		{Set: kalman, Provenance: config.Provenance{Method: "kalman"}},
 	}
 

@@ -136,7 +136,7 @@ func honestSeeds(lo, hi uint64) []uint64 {
 // covariance, without coasting, with outliers at the gate's rate, and with
 // a σ that covers the error.
 func TestDrawnStartsAcquire(t *testing.T) {
-	for _, set := range []string{"place-prediction", "kalman-current"} {
+	for _, set := range []string{"poles-prediction", "kalman-current"} {
 		checkHonest(t, set, honestRun(t, set, honestSeeds(1, 4), 3600), 0.999, 2)
 	}
 }
@@ -147,7 +147,7 @@ func TestMeasureDrawnStarts(t *testing.T) {
 	if os.Getenv("SURMISE_MEASURE") == "" {
 		t.Skip("a measurement: set SURMISE_MEASURE=1 to run it")
 	}
-	for _, set := range []string{"place-prediction", "kalman-current"} {
+	for _, set := range []string{"poles-prediction", "kalman-current"} {
 		checkHonest(t, set, honestRun(t, set, honestSeeds(1, 20), 3600), 0.999, 2)
 	}
 }
@@ -167,7 +167,7 @@ func TestGateCannotLockOut(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	for _, set := range []string{"place-prediction", "kalman-current"} {
+	for _, set := range []string{"poles-prediction", "kalman-current"} {
 		t.Run(set, func(t *testing.T) {
 			md := pl.Model
 			_, _, p := md.Dims()

@@ -240,7 +240,7 @@ func BenchmarkEstimatorMetricsTick(b *testing.B) {
 }
 
 func TestStatusString(t *testing.T) {
-	// The status names of DESIGN.md §3, used as label values.
+	// The status names (status.go), used as label values.
 	for s, want := range map[Status]string{
 		StatusTracking: "tracking", StatusCoasting: "coasting",
 		StatusStaleInput: "stale-input", StatusSuspect: "suspect", Status(9): "Status(9)",

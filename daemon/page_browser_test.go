@@ -295,7 +295,7 @@ func TestPageInBrowser(t *testing.T) {
 		t.Errorf("wider than the %s px window: %s", eval(`String(document.documentElement.clientWidth)`), wide)
 	}
 	gains := eval(`document.getElementById("gains-table").innerText`)
-	for _, want := range []string{"place-prediction", "kalman-current", "innovation RMS, tank_outlet"} {
+	for _, want := range []string{"poles-prediction", "kalman-current", "innovation RMS, tank_outlet"} {
 		if !strings.Contains(gains, want) {
 			t.Errorf("gain sets table lacks %q:\n%s", want, gains)
 		}
@@ -363,8 +363,8 @@ func TestPageInBrowser(t *testing.T) {
 	}
 	poll("the page shows the promotion", `document.getElementById("active-gains").textContent === "kalman-current"`+
 		` && document.getElementById("audit-table").innerText.includes("promote")`)
-	if a := eval(`document.getElementById("audit-table").innerText`); !strings.Contains(a, "place-prediction → kalman-current") {
-		t.Errorf("audit trail does not show the swap from place-prediction to kalman-current:\n%s", a)
+	if a := eval(`document.getElementById("audit-table").innerText`); !strings.Contains(a, "poles-prediction → kalman-current") {
+		t.Errorf("audit trail does not show the swap from poles-prediction to kalman-current:\n%s", a)
 	}
 
 	// 5. The sensors drop out: the estimator coasts, and the page says so.

@@ -307,15 +307,15 @@ func TestPageHistoryMatchesEstimates(t *testing.T) {
 		len(in.Outputs) != 2 || in.Outputs[1].Name != "hx_outlet" || in.Outputs[1].Unit != "degC" || in.Outputs[1].MaxAge != 3 {
 		t.Errorf("estimator description %+v does not match the plant file", in)
 	}
-	// The gains file: active place-prediction (placed at 0.997, 0.97, 0.86,
+	// The gains file: active poles-prediction (placed at 0.997, 0.97, 0.86,
 	// 0.85), candidate kalman-current.
-	if in.Gains.Active != "place-prediction" || in.Gains.Candidate != "kalman-current" || len(in.Gains.Sets) != len(r.gains.Sets) {
+	if in.Gains.Active != "poles-prediction" || in.Gains.Candidate != "kalman-current" || len(in.Gains.Sets) != len(r.gains.Sets) {
 		t.Fatalf("gains %+v do not match the gains file", in.Gains)
 	}
 	s0 := in.Gains.Sets[0]
-	if s0.Name != "place-prediction" || s0.Form != "prediction" || s0.Method != "place" ||
+	if s0.Name != "poles-prediction" || s0.Form != "prediction" || s0.Method != "poles" ||
 		strings.Join(s0.Poles, " ") != "0.997 0.97 0.86 0.85" {
-		t.Errorf("set %+v, want place-prediction with poles 0.997 0.97 0.86 0.85", s0)
+		t.Errorf("set %+v, want poles-prediction with poles 0.997 0.97 0.86 0.85", s0)
 	}
 }
 
@@ -373,7 +373,10 @@ type sseEvent struct {
 func readEvents(body io.Reader, ch chan<- sseEvent) {
 	defer close(ch)
 	sc := bufio.NewScanner(body)
-	sc.Buffer(make([]byte, 0, 1<<16), 1<<24)
+	// An update carries every row since the client's last, up to the whole
+	// ring: in TestPageSlowClient, whose loop ticks as fast as it can, that
+	// was seen past 16 MiB on one line, which ended the healthy stream.
+	sc.Buffer(make([]byte, 0, 1<<16), 1<<28)
 	var ev sseEvent
 	for sc.Scan() {
 		line := sc.Text()
@@ -776,5 +779,5 @@ func ExampleNewPage() {
 		return
 	}
 	fmt.Println(len(h.Rows), h.Rows[0].Seq, h.Rows[0].Status, h.Rows[0].Gains)
-	// Output: 1 1 tracking place-prediction
+	// Output: 1 1 tracking poles-prediction
 }

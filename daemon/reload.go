@@ -366,7 +366,9 @@ func (c *Commissioner) Load(data []byte, source string, sel Selection, trigger s
 }
 
 func (c *Commissioner) load(data []byte, source string, sel Selection, trigger string, who Origin) (*LoadReply, *CommissionError) {
-	g, perr := config.ParseGains(source, data, c.plant)
+	// Positions in the file read "name:line:column" with the name the
+	// requester gave, without the mark of a file sent over the bus.
+	g, perr := config.ParseGains(strings.TrimSuffix(source, sentOverBus), data, c.plant)
 	if perr != nil {
 		cerr := &CommissionError{Code: CodeInvalid, Reason: "gains file " + source + " refused"}
 		var list *config.ErrorList

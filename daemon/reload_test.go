@@ -78,7 +78,7 @@ func cmSet(t testing.TB, md *estimator.Model, name string) config.NamedSet {
 	t.Helper()
 	var gs *estimator.GainSet
 	var err error
-	method := "place"
+	method := "poles"
 	switch name {
 	case "slow":
 		gs, err = estimator.DesignPlaced(md, estimator.Prediction, []complex128{0.995, 0.99}, false)

@@ -464,7 +464,7 @@ func (st *replayState) offer(sig int, v float64, at, recv time.Time, line int) {
 }
 
 // Replay drives one engine per gain set over the source on virtual time,
-// exactly as the daemon drives its engine on the clock (DESIGN.md §3):
+// exactly as the daemon drives its engine on the clock (Engine.Tick):
 // ticks at t0 + k·Ts, and before each tick every sample received at or
 // before it, in the order received, offered to every engine. The engines
 // apply the same hold, staleness, use-once, gate and status rules as live.

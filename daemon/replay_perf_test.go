@@ -168,10 +168,8 @@ func TestReplayDayAt10Hz(t *testing.T) {
 	}
 	t.Logf("%d MB of CSV, %d samples: reading %v CPU (%v wall); reading and replaying %v CPU (%v wall)",
 		len(data)>>20, src.Len(), cpuRead.Round(time.Millisecond), wallRead.Round(time.Millisecond), cpu.Round(time.Millisecond), wall.Round(time.Millisecond))
-	// The goal of the brief: 864k ticks in ≤ 5 s.
-	if cpu > 5*time.Second {
-		t.Errorf("reading and replaying took %v of CPU, want at most 5 s", cpu)
-	}
+	// The goal (DEVELOPERS.md, "Measuring the daemon"): 864k ticks in ≤ 5 s.
+	daemon.CheckGoals(t, daemon.Goal{What: "CPU to read and replay a day at 10 Hz", Got: cpu.Seconds(), Limit: 5, Unit: "s"})
 }
 
 // rpDaySource reads the day of the five-signal plant once per process.

@@ -12,9 +12,10 @@ import (
 	"surmise/estimator"
 )
 
-// badSampleLogEvery is the shortest interval between two log lines about
-// refused samples of one signal of one estimator; the refusals in between
-// are counted, and the next line says how many there were.
+// badSampleLogEvery is the default shortest interval between two log lines
+// about refused samples of one signal of one estimator
+// (Options.RefusedLogInterval); the refusals in between are counted and
+// summarised when it is over.
 const badSampleLogEvery = 10 * time.Second
 
 // Estimator is one running estimator of a Daemon: the engine of one plant,
@@ -138,10 +139,12 @@ func (e *Estimator) receive(s *signal, data []byte) {
 	}
 }
 
-// logRefused logs a refused sample, at most once per badSampleLogEvery for
-// each signal.
+// logRefused logs a refused sample, at most once per
+// Options.RefusedLogInterval for each signal; the refusals in between are
+// summarised by logHeldRefusals.
 func (e *Estimator) logRefused(s *signal, r Reason, err error) {
-	ok, held := s.limit.allow(e.d.now(), int64(badSampleLogEvery))
+	every := e.d.opts.RefusedLogInterval
+	ok, held := s.limit.allow(e.d.now(), int64(every), r)
 	if !ok {
 		return
 	}
@@ -150,9 +153,27 @@ func (e *Estimator) logRefused(s *signal, r Reason, err error) {
 		args = append(args, "error", err)
 	}
 	if held > 0 {
-		args = append(args, "refused_unlogged", held)
+		args = append(args, "refused_before", held)
 	}
 	e.d.log.Warn("sample refused", args...)
+}
+
+// logHeldRefusals logs, for each signal whose refusals were held back and
+// whose interval is over, one line with how many there were and the latest
+// reason; so a burst of refusals is reported even when none follows it. It
+// runs after each tick and allocates nothing when there is nothing to log.
+func (e *Estimator) logHeldRefusals() {
+	every := e.d.opts.RefusedLogInterval
+	now := e.d.now()
+	for i := range e.signals {
+		s := &e.signals[i]
+		held, r := s.limit.due(now, int64(every))
+		if held == 0 {
+			continue
+		}
+		e.d.log.Warn("samples refused", "estimator", e.name, "signal", s.name, "subject", s.subject,
+			"count", held, "within", every.String(), "latest_reason", r.String())
+	}
 }
 
 // tick runs one tick: the engine's estimate, its publication when the bus
@@ -176,6 +197,7 @@ func (e *Estimator) tick(t Tick) {
 		}
 	}
 	e.afterTick(connected)
+	e.logHeldRefusals()
 	e.timing = TickTiming{Lateness: t.Lateness, Compute: time.Since(t.Start), Missed: t.Missed}
 	e.metrics.ObserveTick(e.est.Status, e.timing.Lateness, e.timing.Compute, e.timing.Missed)
 	e.lastTick.Store(d.now())
@@ -217,19 +239,36 @@ func b2i(b bool) int8 {
 
 // logLimiter lets one event through per interval and counts the others.
 type logLimiter struct {
-	next atomic.Int64
-	held atomic.Int64
+	next   atomic.Int64
+	held   atomic.Int64
+	reason atomic.Uint32 // the latest held event's Reason
 }
 
 // allow reports whether an event at now (nanoseconds on a monotonic scale)
-// may be logged, and how many were held back since the last one that was.
-func (l *logLimiter) allow(now, every int64) (ok bool, held int64) {
+// may be logged, and how many were held back since the last one that was
+// (none, when due reported them in between).
+func (l *logLimiter) allow(now, every int64, r Reason) (ok bool, held int64) {
 	next := l.next.Load()
 	if now < next || !l.next.CompareAndSwap(next, now+every) {
+		l.reason.Store(uint32(r))
 		l.held.Add(1)
 		return false, 0
 	}
 	return true, l.held.Swap(0)
+}
+
+// due returns how many events were held back, and the latest one's reason,
+// when there are some and the interval that held them is over; it then
+// starts a new interval. Otherwise it returns 0.
+func (l *logLimiter) due(now, every int64) (held int64, r Reason) {
+	if l.held.Load() == 0 {
+		return 0, 0
+	}
+	next := l.next.Load()
+	if now < next || !l.next.CompareAndSwap(next, now+every) {
+		return 0, 0
+	}
+	return l.held.Swap(0), Reason(l.reason.Load())
 }
 
 // EstimateFunc receives the estimates of every estimator of a daemon, on the

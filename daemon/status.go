@@ -6,7 +6,7 @@ import "strconv"
 // of the `status` label of surmise_ticks_total and surmise_status.
 type Status uint8
 
-// The statuses of a tick (DESIGN.md §3).
+// The statuses of a tick (Engine.Tick step 4 says which one a tick gets).
 const (
 	StatusTracking   Status = iota // "tracking": corrected with at least one fresh measurement
 	StatusCoasting                 // "coasting": no fresh measurement; predicted only

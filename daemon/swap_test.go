@@ -23,7 +23,7 @@ type swapRecord struct {
 }
 
 // swapCheck is the model arithmetic of the current form for the cart
-// (DESIGN.md §3; estimator.Filter documents the same steps), done here by
+// (Engine.Tick; estimator.Filter documents the same steps), done here by
 // hand so that the test does not trust the code it checks:
 //
 //	x̂(k|k−1) = A·(x̂(k−1|k−1) − x0) + B·(u(k−1) − u0)

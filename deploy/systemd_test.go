@@ -18,8 +18,7 @@ const (
 	unitBinary = "/usr/local/bin/surmise"
 )
 
-// daemonFlags are the flags of `surmise run` that take a value, as the daemon's command line is
-// specified for the team (the brief of the deploy kit); compare with cmd/surmise once `run` exists.
+// daemonFlags are the flags of `surmise run` that take a value (cmd/surmise/run.go).
 var daemonFlags = []string{"--nats", "--creds", "--nkey", "--tls-ca", "--tls-cert", "--tls-key", "--listen", "--log-format", "--state-dir", "--fleet", "--metrics", "--instance"}
 
 // unitWithStub copies the unit into a temporary directory with ExecStart pointing at an

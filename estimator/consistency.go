@@ -187,7 +187,7 @@ func Autocorrelation(dst []float64, r []float64) []float64 {
 // WhitenessBound returns 1.96/√n, the 95% bound on the sample
 // autocorrelation of n values of a white sequence at any nonzero lag
 // (Mehra, On the identification of variances and adaptive Kalman
-// filtering, IEEE TAC 15(2), 1970; recalled from memory).
+// filtering, IEEE TAC 15(2), 1970; cited from memory).
 func WhitenessBound(n int) float64 {
 	return 1.96 / math.Sqrt(float64(n))
 }

@@ -7,7 +7,7 @@ import (
 )
 
 func TestChiSquareQuantileTable(t *testing.T) {
-	// Standard chi-square table, as quoted in REFERENCES.md [published].
+	// Chi-square quantiles (SOURCES.md: chi2-table).
 	tests := []struct {
 		df   int
 		prob float64
@@ -38,8 +38,8 @@ func TestChiSquareQuantileOutOfDomain(t *testing.T) {
 }
 
 func TestMeanNISBand(t *testing.T) {
-	// Bar-Shalom, Li, Kirubarajan (2001), bounds recomputed as in
-	// REFERENCES.md [published method, recomputed bounds].
+	// The band of the mean NIS (SOURCES.md: nis-band; bounds recomputed by
+	// testdata/reference/closedforms.py).
 	tests := []struct {
 		n, dof int
 		lo, hi float64
@@ -54,8 +54,8 @@ func TestMeanNISBand(t *testing.T) {
 				tc.n, tc.dof, lo, hi, tc.lo, tc.hi)
 		}
 	}
-	// One value: the 2.5% and 97.5% points of χ²(1), standard table
-	// [published]: 0.000982 and 5.0239.
+	// One value: the 2.5% and 97.5% points of χ²(1) (SOURCES.md:
+	// chi2-table): 0.000982 and 5.0239.
 	lo, hi := NISBand(1, 0.95)
 	if math.Abs(lo-0.000982) > 0.5e-6 || math.Abs(hi-5.0239) > 0.5e-4 {
 		t.Errorf("NISBand(1, 0.95) = [%.6f, %.5f], want [0.000982, 5.0239]", lo, hi)
@@ -83,13 +83,13 @@ func TestNISWindow(t *testing.T) {
 		t.Fatalf("after wrap: Len %d Dof %d Mean %v, want 3, 6, 4", w.Len(), w.Dof(), w.Mean())
 	}
 	// Three values of 2 dof each: the band on the mean is MeanNISBand(3, 2),
-	// the same construction (Bar-Shalom et al. 2001).
+	// the same construction (SOURCES.md: nis-band).
 	lo, hi := w.Band(0.95)
 	wlo, whi := MeanNISBand(3, 2, 0.95)
 	if lo != wlo || hi != whi {
 		t.Errorf("Band = [%v, %v], want MeanNISBand(3, 2) = [%v, %v]", lo, hi, wlo, whi)
 	}
-	// χ²(6) 2.5% and 97.5% points, standard table [published]: 1.2373, 14.4494.
+	// χ²(6) 2.5% and 97.5% points (SOURCES.md: chi2-table): 1.2373, 14.4494.
 	if math.Abs(lo*3-1.2373) > 1e-4 || math.Abs(hi*3-14.4494) > 1e-4 {
 		t.Errorf("Band·3 = [%v, %v], want [1.2373, 14.4494]", lo*3, hi*3)
 	}
@@ -125,7 +125,7 @@ func TestNISWindowAllocs(t *testing.T) {
 
 func TestWhiteness(t *testing.T) {
 	// Seeded white noise is white; an AR(1) sequence with coefficient 0.8 is
-	// not. Bound ±1.96/√N (Mehra 1970, from memory).
+	// not. Bound ±1.96/√N (SOURCES.md: mehra-whiteness; the citation from memory).
 	const n, lags = 2000, 20
 	rng := rand.New(rand.NewPCG(1, 2))
 	white := make([]float64, n)

@@ -9,7 +9,7 @@ import (
 	"gonum.org/v1/gonum/mat"
 )
 
-// designDoubleIntegrator is the sampled double integrator (REFERENCES.md, "Discretisation"):
+// designDoubleIntegrator is the sampled double integrator (SOURCES.md: double-integrator):
 // Φ = [[1, T], [0, 1]], Γ = [T²/2; T], white acceleration of spectral density
 // qc giving Q_d = qc·[[T³/3, T²/2], [T²/2, T]]. r holds the measurement
 // variances of the rows of c (nil for no noise model).
@@ -104,7 +104,7 @@ func TestDesignPlaced(t *testing.T) {
 	for _, tt := range []struct {
 		form Form
 		// Closed form for position only, T = 0.1, poles 0.5, 0.5
-		// (REFERENCES.md, "Pole placement").
+		// (SOURCES.md: double-integrator-placement).
 		l [2]float64
 	}{{Prediction, [2]float64{1, 2.5}}, {Current, [2]float64{0.75, 2.5}}} {
 		gs, err := DesignPlaced(md, tt.form, poles, true)
@@ -128,8 +128,8 @@ func TestDesignPlaced(t *testing.T) {
 			}
 		}
 		// For the prediction form P must solve
-		// P = (A − LC)P(A − LC)ᵀ + Q + LRLᵀ (REFERENCES.md, "Consistency
-		// statistics"), and S = CPCᵀ + R.
+		// P = (A − LC)P(A − LC)ᵀ + Q + LRLᵀ, and S = CPCᵀ + R (SOURCES.md:
+		// fixed-gain-covariance).
 		if tt.form == Prediction {
 			c := OutputRows(md.C, pos.Outputs)
 			r := OutputCov(md.R, pos.Outputs)

@@ -20,7 +20,7 @@ import (
 //	exp([[A, B], [0, 0]]·ts) = [[Ad, Bd], [0, I]],
 //
 // so Bd = ∫₀^ts e^{A·s} ds · B is right also when A is singular (an
-// integrator), where the textbook A⁻¹(Ad − I)B is not defined.
+// integrator), where the closed form A⁻¹(Ad − I)B is not defined.
 //
 // Qd = ∫₀^ts e^{A·s}·Qc·e^{Aᵀ·s} ds is computed by Van Loan's method
 // (C. F. Van Loan, "Computing integrals involving the matrix exponential",
@@ -43,7 +43,7 @@ import (
 //
 // The matrix exponentials are gonum's mat.Dense.Exp (scaling and squaring with
 // Padé approximants, Higham's algorithm); the tests check it against the stiff
-// example and the scipy values listed in REFERENCES.md.
+// example and scipy's values (testdata/reference/SOURCES.md).
 //
 // Discretise panics if A is not square, if B or Qc do not have as many rows as
 // A, or if ts is not a finite positive number: these are programmer mistakes,

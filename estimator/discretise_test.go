@@ -41,7 +41,7 @@ func TestDiscretiseClosedForms(t *testing.T) {
 	}{
 		{
 			// Double integrator: Φ = [[1, T], [0, 1]], Γ = [T²/2; T],
-			// Q_d = q·[[T³/3, T²/2], [T²/2, T]] (closed forms, REFERENCES.md).
+			// Q_d = q·[[T³/3, T²/2], [T²/2, T]] (SOURCES.md: double-integrator).
 			name: "double integrator T=0.1 q=2",
 			a:    mat.NewDense(2, 2, []float64{0, 1, 0, 0}),
 			b:    mat.NewDense(2, 1, []float64{0, 1}),
@@ -68,7 +68,7 @@ func TestDiscretiseClosedForms(t *testing.T) {
 		{
 			// First-order lag τẋ = −x + K·u + w, τ=2, K=3, T=0.5, unit spectral
 			// density: Φ = e^{−T/τ}, Γ = K(1 − e^{−T/τ}), Q_d = (τ/2)(1 − e^{−2T/τ}).
-			// Values recomputed in REFERENCES.md.
+			// SOURCES.md: first-order-lag (recomputed by closedforms.py).
 			name: "first-order lag",
 			a:    mat.NewDense(1, 1, []float64{-0.5}),
 			b:    mat.NewDense(1, 1, []float64{1.5}),
@@ -80,7 +80,7 @@ func TestDiscretiseClosedForms(t *testing.T) {
 			tol:  1e-15,
 		},
 		{
-			// scipy signal/tests/test_cont2discrete.py, TestC2D.test_zoh.
+			// SOURCES.md: scipy-c2d, TestC2D.test_zoh.
 			name: "scipy test_zoh",
 			a:    mat.NewDense(2, 2, []float64{1, 0, 0, 1}),
 			b:    mat.NewDense(2, 1, []float64{0.5, 0.5}),
@@ -90,7 +90,7 @@ func TestDiscretiseClosedForms(t *testing.T) {
 			tol:  1e-14,
 		},
 		{
-			// scipy signal/tests/test_cont2discrete.py, TestC2dLti.test_c2d_ss.
+			// SOURCES.md: scipy-c2d, TestC2dLti.test_c2d_ss.
 			name: "scipy test_c2d_ss",
 			a:    mat.NewDense(2, 2, []float64{-0.3, 0.1, 0.2, -0.7}),
 			b:    mat.NewDense(2, 1, []float64{0, 1}),
@@ -149,8 +149,8 @@ func TestDiscretisePoles(t *testing.T) {
 }
 
 // TestExpStiff checks the matrix exponential Discretise relies on against
-// the stiff example in REFERENCES.md: expm of the 4×4 matrix below is
-// 0.25·ones(4). A truncated Taylor series fails here by many orders of
+// the stiff example of SOURCES.md: stiff-exponential: expm of the 4×4
+// matrix below is 0.25·ones(4) (closed form, by its eigenvalues). A truncated Taylor series fails here by many orders of
 // magnitude. scipy.linalg.expm (1.10) is off by 2.1e-14 relative; gonum's
 // Exp by about 1e-14, so the tolerance is 1e-13 relative.
 func TestExpStiff(t *testing.T) {
@@ -196,7 +196,7 @@ func discretiseDense(rows [][]float64) *mat.Dense {
 }
 
 // TestDiscretiseFixture compares random 5-state, 2-input systems with values
-// recomputed by scipy (testdata/reference/discretise.py: Ad, Bd from
+// recomputed by scipy (SOURCES.md: discretise-random; discretise.py: Ad, Bd from
 // scipy.linalg.expm of the augmented matrix, checked against
 // scipy.signal.cont2discrete; Qd from adaptive quadrature of the defining
 // integral, checked against scipy's Van Loan exponential).

@@ -46,7 +46,8 @@ func ExampleNewFilter() {
 	}
 	// The plant follows x(k) = 1 + 0.05·k + 0.001·k², v(k) = 0.5 + 0.02·k,
 	// and the error e(0) = [0.25, −2] decays as e(k) = (A − L·C·A)·e(k−1):
-	// e(10) = [−0.00195, −0.02393] (checked with numpy).
+	// e(10) = [−0.00195, −0.02393] (SOURCES.md: double-integrator-placement;
+	// e(10) recomputed by closedforms.py, key example-current-observer).
 
 	// Output:
 	// k= 0  position 1.0000 (estimate 0.7500)  velocity 0.5000 (estimate 2.5000)

@@ -311,7 +311,7 @@ func (f *Filter) Finite() bool {
 	return true
 }
 
-// Step runs one tick (DESIGN.md §3) with the input u(k) and the outputs y(k)
+// Step runs one tick with the input u(k) and the outputs y(k)
 // in absolute units, of lengths m and p. Only the outputs in present are
 // read; the others may hold anything, NaN included. A present output whose
 // value is NaN or infinite is treated as absent.

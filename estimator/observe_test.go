@@ -74,8 +74,8 @@ func TestCheckObservability(t *testing.T) {
 	}{
 		{
 			// Two identical decoupled first-order modes seen through their sum
-			// only: the difference x1 − x2 is invisible (textbook, common
-			// practice). O = [[1, 1], [0.8, 0.8]], rank 1.
+			// only: the difference x1 − x2 is invisible (SOURCES.md:
+			// pbh-test, common practice). O = [[1, 1], [0.8, 0.8]], rank 1.
 			name: "identical modes, sum measured, stable",
 			a:    mat.NewDense(2, 2, []float64{0.8, 0, 0, 0.8}),
 			c:    mat.NewDense(1, 2, []float64{1, 1}),
@@ -116,7 +116,8 @@ func TestCheckObservability(t *testing.T) {
 			// Weakly observable: the second mode reaches the output with gain
 			// 1e-8. σ_min of [[−0.4, 0], [0, 0], [1, 1e-8]] is
 			// 3.71390676e-09 (numpy.linalg.svd), over 0.9 + 0.5 + 1 = 2.4
-			// gives 1.5474611514754335e-09 (recomputed with numpy).
+			// gives 1.5474611514754335e-09 (SOURCES.md: pbh-test, recomputed by
+			// closedforms.py).
 			name: "weakly observable",
 			a:    mat.NewDense(2, 2, []float64{0.9, 0, 0, 0.5}),
 			c:    mat.NewDense(1, 2, []float64{1, 1e-8}),
@@ -295,8 +296,8 @@ func TestCurrentFormSingularA(t *testing.T) {
 	}
 }
 
-// TestCurrentFormProperty checks the trade fact in REFERENCES.md (common
-// practice): a ZOH-discretised A = e^{A_c·T} is invertible, so (A, C·A) is
+// TestCurrentFormProperty checks a trade fact (SOURCES.md: zoh-eigenvalues,
+// common practice): a ZOH-discretised A = e^{A_c·T} is invertible, so (A, C·A) is
 // observable exactly when (A, C) is. Half the systems are random (observable
 // with probability one); the other half are built unobservable on purpose —
 // a continuous A_c, C in the block form [[A11, 0], [A21, A22]], [C1, 0],

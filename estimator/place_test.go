@@ -10,14 +10,14 @@ import (
 )
 
 // doubleIntegrator returns Φ and C of the sampled double integrator with
-// position measured: Φ = [[1, T], [0, 1]], C = [1, 0] (closed form, see
-// REFERENCES.md "Discretisation").
+// position measured: Φ = [[1, T], [0, 1]], C = [1, 0] (SOURCES.md:
+// double-integrator).
 func doubleIntegrator(ts float64) (a, c *mat.Dense) {
 	return mat.NewDense(2, 2, []float64{1, ts, 0, 1}), mat.NewDense(1, 2, []float64{1, 0})
 }
 
 // knvExample1 is example 1 of Kautsky, Nichols and Van Dooren (1985), as
-// printed in scipy's signal/tests/test_ltisys.py.
+// printed in scipy's signal/tests/test_ltisys.py (SOURCES.md: knv).
 func knvExample1() (a, b *mat.Dense) {
 	a = mat.NewDense(4, 4, []float64{
 		1.380, -0.2077, 6.715, -5.676,
@@ -130,8 +130,8 @@ func TestErrorDynamics(t *testing.T) {
 func TestPlaceObserverDoubleIntegrator(t *testing.T) {
 	const ts = 0.1
 	a, c := doubleIntegrator(ts)
-	// Closed forms for the double integrator with C = [1, 0] (REFERENCES.md,
-	// "Pole placement"): L_p = [2 − p₁ − p₂, (1 − p₁)(1 − p₂)/T],
+	// Closed forms for the double integrator with C = [1, 0] (SOURCES.md:
+	// double-integrator-placement): L_p = [2 − p₁ − p₂, (1 − p₁)(1 − p₂)/T],
 	// L_c = [1 − p₁p₂, (1 − p₁)(1 − p₂)/T].
 	closed := func(p1, p2 complex128) [2][2]float64 {
 		return [2][2]float64{
@@ -145,7 +145,7 @@ func TestPlaceObserverDoubleIntegrator(t *testing.T) {
 		want  [2][2]float64 // L_p, L_c
 	}{
 		// T = 0.1, poles 0.5, 0.5 → L_p = [1, 2.5], L_c = [0.75, 2.5]
-		// (REFERENCES.md, recomputed from the closed form).
+		// (SOURCES.md: double-integrator-placement).
 		{"repeated 0.5", []complex128{0.5, 0.5}, [2][2]float64{{1, 2.5}, {0.75, 2.5}}},
 		{"distinct", []complex128{0.3, 0.6}, closed(0.3, 0.6)},
 		{"complex pair", []complex128{complex(0.6, 0.2), complex(0.6, -0.2)}, closed(complex(0.6, 0.2), complex(0.6, -0.2))},
@@ -177,7 +177,7 @@ func TestPlaceKNVExample1(t *testing.T) {
 		name  string
 		poles []complex128
 	}{
-		// Poles of example 1 (Kautsky, Nichols, Van Dooren 1985).
+		// Poles of example 1 (SOURCES.md: knv).
 		{"published", []complex128{-0.2, -0.5, -5.0566, -8.6659}},
 		// Repeated poles, each as often as B has rank (scipy's
 		// test_ltisys.py uses (2, 2, 3, 3) on the same system).
@@ -196,7 +196,7 @@ func TestPlaceKNVExample1(t *testing.T) {
 				t.Fatalf("K is %d×%d, want 2×4", r, c)
 			}
 			// Multi-input gains are not unique: check the achieved
-			// eigenvalues (REFERENCES.md).
+			// eigenvalues (SOURCES.md: knv).
 			m := closedLoop(a, b, k)
 			if tt.name != "repeated beyond rank" {
 				assertPoles(t, m, tt.poles, 1e-6)
@@ -225,7 +225,7 @@ func TestPlaceKNVExample1(t *testing.T) {
 }
 
 func TestPlaceComplexCarModel(t *testing.T) {
-	// Linearised car model with complex poles, from scipy's
+	// Linearised car model with complex poles (SOURCES.md: knv), from scipy's
 	// signal/tests/test_ltisys.py (test_complex).
 	a := mat.NewDense(4, 4, []float64{0, 7, 0, 0, 0, 0, 0, 7. / 3, 0, 0, 0, 0, 0, 0, 0, 0})
 	b := mat.NewDense(4, 2, []float64{0, 0, 0, 0, 1, 0, 0, 1})

@@ -115,7 +115,7 @@ func (pr *Prepared) compileFixed(md *Model, g *GainSet) error {
 	full := FullPattern(p)
 	pr.byPattern = make(map[Pattern]int, len(g.Gains))
 	for gi, pg := range g.Gains {
-		where := fmt.Sprintf("gain %d (outputs %b)", gi, uint64(pg.Outputs))
+		where := fmt.Sprintf("gain %d (outputs %s)", gi, patternLabel(md, pg.Outputs))
 		if pg.Outputs == 0 || pg.Outputs&^full != 0 {
 			return fmt.Errorf("%s: pattern is empty or names outputs beyond the model's %d", where, p)
 		}

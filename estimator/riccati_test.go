@@ -101,7 +101,7 @@ func TestSolveDAREClosedForms(t *testing.T) {
 		want *mat.SymDense
 		tol  float64 // relative, Frobenius
 	}{
-		// DAREX #1 (Benner, Laub, Mehrmann 1995): X = ((1 + √5)/2)·Q.
+		// DAREX #1 (SOURCES.md: darex): X = ((1 + √5)/2)·Q.
 		{"DAREX 1", rowsDense([][]float64{{4, 3}, {-4.5, -3.5}}), rowsDense([][]float64{{1}, {-1}}),
 			rowsSym([][]float64{{9, 6}, {6, 4}}), diagSym(1),
 			rowsSym([][]float64{{9 * phi, 6 * phi}, {6 * phi, 4 * phi}}), 1e-12},
@@ -156,7 +156,8 @@ type riccatiFixture struct {
 
 func loadRiccatiFixture(t *testing.T) *riccatiFixture {
 	t.Helper()
-	// Written by testdata/reference/riccati.py (scipy 1.10).
+	// Written by testdata/reference/riccati.py (scipy 1.10; SOURCES.md: darex,
+	// lyapunov-kalman).
 	raw, err := os.ReadFile(filepath.Join("..", "testdata", "reference", "riccati.json"))
 	if err != nil {
 		t.Fatal(err)
@@ -247,7 +248,8 @@ func TestSolveDiscreteLyapunov(t *testing.T) {
 	if want := 2 / 0.19; math.Abs(x.At(0, 0)-want) > 1e-13*want {
 		t.Errorf("scalar: x = %.17g, want %.17g", x.At(0, 0), want)
 	}
-	// Fixtures from scipy.linalg.solve_discrete_lyapunov.
+	// Fixtures from scipy.linalg.solve_discrete_lyapunov (SOURCES.md:
+	// lyapunov-kalman).
 	f := loadRiccatiFixture(t)
 	for _, c := range f.Lyapunov {
 		t.Run(c.Name, func(t *testing.T) {
@@ -270,7 +272,7 @@ func TestSolveDiscreteLyapunov(t *testing.T) {
 
 func TestSteadyStateKalmanRandomWalk(t *testing.T) {
 	// Scalar random walk A = C = 1: P⁻ = (q + √(q² + 4qr))/2, K = P⁻/(P⁻ + r)
-	// (REFERENCES.md); q = r = 1 gives 1.6180339887 and 0.6180339887. The a
+	// (SOURCES.md: random-walk-riccati); q = r = 1 gives 1.6180339887 and 0.6180339887. The a
 	// posteriori P⁺ = (1 − K)·P⁻ (common practice).
 	tests := []struct {
 		q, r  float64
@@ -307,7 +309,7 @@ func TestSteadyStateKalmanFixture(t *testing.T) {
 			if err != nil {
 				t.Fatal(err)
 			}
-			// Values from scipy (testdata/reference/riccati.py).
+			// Values from scipy (SOURCES.md: lyapunov-kalman).
 			for _, m := range []struct {
 				name      string
 				got, want mat.Matrix
@@ -319,14 +321,14 @@ func TestSteadyStateKalmanFixture(t *testing.T) {
 					t.Errorf("%s: relative difference from scipy %.3g > 1e-9", m.name, e)
 				}
 			}
-			// L_p = A·L_c (REFERENCES.md, common practice).
+			// L_p = A·L_c (SOURCES.md: kalman-forms).
 			var alc mat.Dense
 			alc.Mul(a, g.Lc)
 			if e := relErr(g.Lp, &alc); e > 1e-14 {
 				t.Errorf("Lp differs from A·Lc by %.3g", e)
 			}
 			// Both forms share their error poles: A(I − LcC) and (I − LcC)A
-			// are similar (REFERENCES.md, common practice).
+			// are similar (SOURCES.md: kalman-forms).
 			pe := Eigenvalues(ErrorDynamics(a, cm, g.Lp, Prediction))
 			ce := Eigenvalues(ErrorDynamics(a, cm, g.Lc, Current))
 			for i := range pe {

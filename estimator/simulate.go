@@ -10,7 +10,7 @@ import (
 
 // Plant is a seeded simulation of a Model, with process noise w ~ N(0, Q)
 // and measurement noise v ~ N(0, R) (no noise where the model's Q or R is
-// nil). It produces exactly the sequence a Filter expects (DESIGN.md §3):
+// nil). It produces exactly the sequence a Filter expects (Filter.Step):
 //
 //	for k := 0; ; k++ {
 //		u := …                 // the input decided at sample k

@@ -17,7 +17,8 @@ import (
 )
 
 // TestCheckGolden compares check's report, text and JSON, with the golden
-// files, and its exit status with the verdict.
+// files (regression snapshots: see golden), and its exit status with the
+// verdict. TestCheckAgainstScipy checks the numbers in them.
 func TestCheckGolden(t *testing.T) {
 	for _, tc := range []struct {
 		golden   string
@@ -57,7 +58,7 @@ func checkJSON(t *testing.T, args ...string) (*check.Report, int) {
 }
 
 // TestCheckFirstOrderLag checks the reported discretisation, noise and time
-// constant of a first-order lag against the closed forms of REFERENCES.md.
+// constant of a first-order lag against its closed forms (SOURCES.md: first-order-lag).
 func TestCheckFirstOrderLag(t *testing.T) {
 	rep, code := checkJSON(t, plantPath("cmd:first-order-lag.yaml"))
 	if code != 0 || !rep.CanRun {
@@ -70,12 +71,12 @@ func TestCheckFirstOrderLag(t *testing.T) {
 			t.Errorf("%s = %.12g, want %.12g", what, got, want)
 		}
 	}
-	// τ = 2, K = 3, T = 0.5: Φ, Γ and Q_d [recomputed, REFERENCES.md].
+	// τ = 2, K = 3, T = 0.5: Φ, Γ and Q_d (SOURCES.md: first-order-lag, recomputed).
 	near("A", rep.Model.A[0][0], 0.7788007830714049)
 	near("B", rep.Model.B[0][0], 0.6635976507857854)
 	near("process std per sample", rep.Noise.ProcessStd[0], math.Sqrt(0.3934693402873666))
 	near("process density std", rep.Noise.ProcessDensityStd[0], 1)
-	// The time constant is τ = 2 s (closed form: −T/ln e^{−T/τ} = τ).
+	// The time constant is τ = 2 s (closed form: −T/ln e^{−T/τ} = τ; SOURCES.md: first-order-lag).
 	if len(rep.Eigenvalues) != 1 || rep.Eigenvalues[0].TimeConstantSeconds == nil {
 		t.Fatalf("eigenvalues %+v, want one with a time constant", rep.Eigenvalues)
 	}
@@ -96,7 +97,7 @@ func TestCheckFirstOrderLag(t *testing.T) {
 
 // TestCheckTimeConstantsDemo checks the demo plant's reported time constants
 // against the continuous-time eigenvalues of its A: zero-order hold maps
-// λ_c to e^{λ_c·Ts}, so −Ts/ln|λ| = −1/Re λ_c (common practice), and the zero
+// λ_c to e^{λ_c·Ts}, so −Ts/ln|λ| = −1/Re λ_c (SOURCES.md: zoh-eigenvalues), and the zero
 // eigenvalue of the heat-loss bias state is an integrator.
 func TestCheckTimeConstantsDemo(t *testing.T) {
 	plant, err := config.LoadPlant(plantPath("hotwater-loop.yaml"))
@@ -150,7 +151,7 @@ func TestCheckTimeConstantsDemo(t *testing.T) {
 	// The committed gains: each fixed set has gains for both single sensors,
 	// every gain with S (NIS available) and its poles inside the unit circle.
 	g := rep.Gains
-	if g == nil || g.Active != "place-prediction" || g.Candidate != "kalman-current" || len(g.Sets) != 2 {
+	if g == nil || g.Active != "poles-prediction" || g.Candidate != "kalman-current" || len(g.Sets) != 2 {
 		t.Fatalf("gains report %+v", g)
 	}
 	for _, s := range g.Sets {
@@ -165,7 +166,7 @@ func TestCheckTimeConstantsDemo(t *testing.T) {
 	}
 	// The placed set achieved the poles it asked for.
 	if got := g.Sets[0].Patterns[0].SpectralRadius; math.Abs(got-0.997) > 1e-9 {
-		t.Errorf("place-prediction spectral radius %v, want 0.997 (its requested slowest pole)", got)
+		t.Errorf("poles-prediction spectral radius %v, want 0.997 (its requested slowest pole)", got)
 	}
 }
 

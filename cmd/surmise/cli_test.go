@@ -63,6 +63,10 @@ func cli(t *testing.T, args ...string) (stdout, stderr string, code int) {
 }
 
 // golden compares got with testdata/golden/name, or rewrites it with -update.
+// The golden files are regression snapshots written by the code under test:
+// they catch an unintended change of the output, not a wrong number. The
+// numbers are checked against outside values elsewhere (check_ref_test.go,
+// and the closed forms in the tests that call golden).
 func golden(t *testing.T, name, got string) {
 	t.Helper()
 	path := filepath.Join("testdata", "golden", name)
@@ -176,6 +180,87 @@ func TestParseArgs(t *testing.T) {
 		}
 		if strings.Join(pos, "|") != strings.Join(tc.wantPos, "|") || *j != tc.wantJSON {
 			t.Errorf("parseArgs(%q) = %q, json %v; want %q, json %v", tc.args, pos, *j, tc.wantPos, tc.wantJSON)
+		}
+	}
+}
+
+// TestHelp: help goes to standard output (so `surmise run -h | less` works),
+// `surmise help VERB` is `surmise VERB -h`, and every flag's placeholder is
+// an upper-case word, so that it cannot be read as a default.
+func TestHelp(t *testing.T) {
+	for _, v := range verbs() {
+		t.Run(v.name, func(t *testing.T) {
+			out, errOut, code := cli(t, v.name, "-h")
+			if code != 0 || errOut != "" || !strings.HasPrefix(out, "Usage: surmise "+v.name) {
+				t.Fatalf("surmise %s -h: status %d, stdout %q, stderr %q; want the usage on stdout", v.name, code, firstLine(out), errOut)
+			}
+			if out2, _, code := cli(t, "help", v.name); code != 0 || out2 != out {
+				t.Errorf("surmise help %s differs from surmise %s -h (status %d)", v.name, v.name, code)
+			}
+			if strings.Contains(out, "Flags:") && !strings.Contains(out, "\n  -") {
+				t.Errorf("an empty Flags: section:\n%s", out)
+			}
+			for _, line := range strings.Split(out, "\n") {
+				if !strings.HasPrefix(line, "  -") {
+					continue
+				}
+				f := strings.Fields(line)
+				if len(f) == 2 && strings.ToUpper(f[1]) != f[1] {
+					t.Errorf("flag line %q: the placeholder %q is not an upper-case word", line, f[1])
+				}
+			}
+		})
+	}
+	if out, _, code := cli(t, "version", "-h"); code != 0 || strings.Contains(out, "Flags:") {
+		t.Errorf("surmise version -h: status %d, %q; want no Flags: section", code, out)
+	}
+	if out, _, code := cli(t, "help"); code != 0 || !strings.Contains(out, "simulate") {
+		t.Errorf("surmise help: status %d, %q", code, out)
+	}
+}
+
+// TestUsageErrors: a command-line mistake is a short message on standard
+// error, with the flag or command probably meant, not the whole usage.
+func TestUsageErrors(t *testing.T) {
+	for _, tc := range []struct {
+		args []string
+		want string
+	}{
+		{[]string{"replay", "--dat", "x"}, "surmise replay: unknown flag --dat (did you mean --data?)"},
+		{[]string{"design", "--metod", "kalman", "p.yaml"}, "surmise design: unknown flag --metod (did you mean --method?)"},
+		{[]string{"check", "--verbose", "p.yaml"}, "surmise check: unknown flag --verbose\n"},
+		{[]string{"ctl", "--timeout"}, "surmise ctl: flag --timeout needs a value"},
+		{[]string{"demo", "--speed", "fast"}, `surmise demo: invalid value "fast" for --speed`},
+		{[]string{"chek"}, `surmise: unknown command "chek" (did you mean "check"?)`},
+		{[]string{"check"}, "surmise check: want a plant file"},
+	} {
+		out, errOut, code := cli(t, tc.args...)
+		if code != 2 || out != "" || !strings.Contains(errOut, tc.want) {
+			t.Errorf("surmise %q: status %d, stdout %q, stderr %q; want status 2 and %q", tc.args, code, out, errOut, tc.want)
+		}
+		if n := strings.Count(errOut, "\n"); n > 3 {
+			t.Errorf("surmise %q: %d lines on stderr, want a short message:\n%s", tc.args, n, errOut)
+		}
+	}
+}
+
+func firstLine(s string) string {
+	line, _, _ := strings.Cut(s, "\n")
+	return line
+}
+
+// TestFnumNearOne: "1" is printed only for 1; an eigenvalue a hair below it
+// shows how far below.
+func TestFnumNearOne(t *testing.T) {
+	for _, tc := range []struct {
+		x    float64
+		want string
+	}{
+		{1, "1"}, {-1, "-1"}, {0.99999978, "0.99999978"}, {1.0000004, "1.0000004"},
+		{-0.9999999, "-0.9999999"}, {0.998564, "0.998564"}, {0.5, "0.5"},
+	} {
+		if got := fnum(tc.x); got != tc.want {
+			t.Errorf("fnum(%v) = %q, want %q", tc.x, got, tc.want)
 		}
 	}
 }

@@ -73,7 +73,7 @@ func runCtl(ctx context.Context, e *env, args []string) error {
 	flags.StringVar(&f.nats, "nats", "nats://127.0.0.1:4222", "NATS server `URL`s, comma-separated (the default is where surmise run's embedded server listens)")
 	flags.StringVar(&f.creds, "creds", "", "NATS user credentials `FILE` (JWT and seed)")
 	flags.StringVar(&f.tlsCA, "tls-ca", "", "PEM `FILE` of the CAs that sign the NATS server's certificate")
-	flags.DurationVar(&f.timeout, "timeout", 5*time.Second, "how long to wait for the connection and for the reply")
+	flags.DurationVar(&f.timeout, "timeout", 5*time.Second, "how long to wait for the connection and for the reply, a `DURATION`")
 	flags.BoolVar(&f.json, "json", false, "print the daemon's JSON reply as it came")
 	flags.StringVar(&f.set, "set", "", "load: run the set `NAME` instead of the file's active set")
 	flags.StringVar(&f.candidate, "candidate", "", "load: run the set `NAME` in shadow instead of the file's candidate")
@@ -131,6 +131,7 @@ func runCtl(ctx context.Context, e *env, args []string) error {
 			return fmt.Errorf("reading the gains file: %w", err)
 		}
 		msg.Data = data
+		msg.Header.Set(daemon.HeaderSource, rest[0])
 		if f.set != "" {
 			msg.Header.Set(daemon.HeaderSet, f.set)
 		}
@@ -355,8 +356,8 @@ func ctlPrintStatus(w io.Writer, r *daemon.StatusReply) {
 		if l.s == nil {
 			continue
 		}
-		fmt.Fprintf(tw, "%s\t#%d %s %s: %s, NIS window mean %s in [%s, %s]\n", l.what, l.s.Seq, l.s.Time.Local().Format(time.TimeOnly), l.s.Gains,
-			l.s.Status, ctlNum(l.s.NISMean), ctlNum(l.s.NISBand[0]), ctlNum(l.s.NISBand[1]))
+		fmt.Fprintf(tw, "%s\t#%d %s %s: %s, %s\n", l.what, l.s.Seq, l.s.Time.Local().Format(time.TimeOnly), l.s.Gains,
+			l.s.Status, nisWords(float64(l.s.NISMean), float64(l.s.NISBand[0]), float64(l.s.NISBand[1])))
 	}
 	tw.Flush()
 	if r.Tick != nil {
@@ -398,4 +399,22 @@ func ctlPrintJump(w io.Writer, j *daemon.Jump) {
 		fmt.Fprintf(tw, "  %s\t%s\t%s\t%s\t%s\t%s\n", s.Name, s.Unit, fnum(s.Active), fnum(s.Candidate), fnum(s.Difference), ctlNum(s.Sigmas))
 	}
 	tw.Flush()
+}
+
+// nisWords says where a windowed NIS mean lies against its 95 % band:
+// "NIS window mean 1.02, inside its 95 % band [0.81, 1.21]", "… below its
+// 95 % band …", "… above …", or why there is none.
+func nisWords(mean, lo, hi float64) string {
+	band := fmt.Sprintf("its 95 %% band [%s, %s]", fnum(lo), fnum(hi))
+	switch {
+	case math.IsNaN(mean):
+		return "no NIS window mean yet (or no S in this gain set)"
+	case math.IsNaN(lo) || math.IsNaN(hi):
+		return fmt.Sprintf("NIS window mean %s, no band yet", fnum(mean))
+	case mean < lo:
+		return fmt.Sprintf("NIS window mean %s, below %s", fnum(mean), band)
+	case mean > hi:
+		return fmt.Sprintf("NIS window mean %s, above %s", fnum(mean), band)
+	}
+	return fmt.Sprintf("NIS window mean %s, inside %s", fnum(mean), band)
 }

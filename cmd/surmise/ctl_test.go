@@ -48,7 +48,7 @@ func startCtlDaemon(t *testing.T) *ctlDaemon {
 		t.Fatal(err)
 	}
 	for _, args := range [][]string{
-		{"design", "--method", "place", "--form", "prediction", "--poles", "0.995,0.99", "--name", "slow", "--time", "2026-05-04T10:00:00Z", plantFile},
+		{"design", "--method", "poles", "--form", "prediction", "--poles", "0.995,0.99", "--name", "slow", "--time", "2026-05-04T10:00:00Z", plantFile},
 		{"design", "--add", "--candidate", "--method", "kalman", "--form", "current", "--name", "kalman", "--time", "2026-05-04T10:00:00Z", plantFile},
 	} {
 		if _, stderr, code := cli(t, args...); code != 0 {
@@ -304,7 +304,7 @@ func TestRunSIGHUP(t *testing.T) {
 	if err := os.WriteFile(plantFile, src, 0o644); err != nil {
 		t.Fatal(err)
 	}
-	if _, stderr, code := cli(t, "design", "--method", "place", "--form", "prediction", "--poles", "0.995,0.99", "--name", "slow", plantFile); code != 0 {
+	if _, stderr, code := cli(t, "design", "--method", "poles", "--form", "prediction", "--poles", "0.995,0.99", "--name", "slow", plantFile); code != 0 {
 		t.Fatalf("design: %s", stderr)
 	}
 	stdout, stderr := newSyncBuffer(), newSyncBuffer()
@@ -363,4 +363,24 @@ func FuzzCtlNameValues(f *testing.F) {
 			}
 		}
 	})
+}
+
+// TestNISWords: a windowed NIS mean is said to be inside its band only
+// when it is.
+func TestNISWords(t *testing.T) {
+	nan := math.NaN()
+	for _, tc := range []struct {
+		mean, lo, hi float64
+		want         string
+	}{
+		{1.02, 0.81, 1.21, "NIS window mean 1.02, inside its 95 % band [0.81, 1.21]"},
+		{0.0027, 0.47, 1.73, "NIS window mean 0.0027, below its 95 % band [0.47, 1.73]"},
+		{3, 0.47, 1.73, "NIS window mean 3, above its 95 % band [0.47, 1.73]"},
+		{nan, 0.47, 1.73, "no NIS window mean yet (or no S in this gain set)"},
+		{1, nan, nan, "NIS window mean 1, no band yet"},
+	} {
+		if got := nisWords(tc.mean, tc.lo, tc.hi); got != tc.want {
+			t.Errorf("nisWords(%v, %v, %v) = %q, want %q", tc.mean, tc.lo, tc.hi, got, tc.want)
+		}
+	}
 }

@@ -59,12 +59,12 @@ type demoFlags struct {
 func runDemo(ctx context.Context, e *env, args []string) error {
 	fs := newFlags(e, "demo", demoSynopsis)
 	var f demoFlags
-	fs.StringVar(&f.listen, "listen", daemon.DefaultHTTPAddr, "HTTP `address` of the live page, /metrics, /healthz and /readyz")
-	fs.IntVar(&f.natsPort, "nats-port", 0, "loopback `port` of the NATS server (default 4222 when free, else any; -1 any)")
-	fs.DurationVar(&f.length, "for", 0, "stop after this `duration` (default: until interrupted)")
-	fs.DurationVar(&f.every, "every", 5*time.Second, "print a line this `often`")
-	fs.Float64Var(&f.speed, "speed", 1, "time `scale`: the plant and the daemon run this many times faster than real time")
-	fs.Uint64Var(&f.seed, "seed", 1, "`seed` of the simulated plant's noise")
+	fs.StringVar(&f.listen, "listen", daemon.DefaultHTTPAddr, "HTTP `ADDRESS` of the live page, /metrics, /healthz and /readyz")
+	fs.IntVar(&f.natsPort, "nats-port", 0, "loopback `PORT` of the NATS server (default: 4222 when free, else any; -1 any)")
+	fs.DurationVar(&f.length, "for", 0, "stop after this `DURATION`, such as 30s (default: until interrupted)")
+	fs.DurationVar(&f.every, "every", 5*time.Second, "print a status line every `DURATION`")
+	fs.Float64Var(&f.speed, "speed", 1, "time `SCALE`: the plant and the daemon run this many times faster than real time")
+	fs.Uint64Var(&f.seed, "seed", 1, "`SEED` of the simulated plant's noise")
 	fs.BoolVar(&f.verbose, "verbose", false, "log the daemon's messages on standard error")
 	pos, err := parseArgs(fs, args)
 	if err != nil {

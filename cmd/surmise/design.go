@@ -29,8 +29,9 @@ Designs a gain set for the plant's discrete model and writes the gains file
 model's fingerprint. Methods:
 
   kalman  the steady-state Kalman filter of the plant's noise (the default)
-  place   pole placement: --poles lists the error-dynamics eigenvalues, or
+  poles   pole placement: --poles lists the error-dynamics eigenvalues, or
           --faster F makes them F times faster than the plant's own modes
+          (the earlier spelling --method place is read as poles)
 
 The file is written atomically (a temporary file beside it, then a rename).
 Designing twice from the same inputs gives the same bytes: the time recorded
@@ -48,16 +49,16 @@ type designFlags struct {
 func runDesign(_ context.Context, e *env, args []string) error {
 	flags := newFlags(e, "design", designSynopsis)
 	var f designFlags
-	flags.StringVar(&f.method, "method", "", "`place` or kalman (default kalman, or place when --poles or --faster is given)")
-	flags.StringVar(&f.form, "form", "current", "observer form: `prediction` (x̂(k+1|k)) or current (x̂(k|k))")
-	flags.StringVar(&f.poles, "poles", "", "placement: the error-dynamics `eigenvalues`, comma-separated, real or complex pairs: \"0.8,0.8,0.7+0.1i,0.7-0.1i\" (0.7±0.1i stands for the pair)")
+	flags.StringVar(&f.method, "method", "", "`METHOD`: kalman or poles (pole placement; default kalman, or poles when --poles or --faster is given)")
+	flags.StringVar(&f.form, "form", "current", "observer `FORM`: prediction (x̂(k+1|k)) or current (x̂(k|k))")
+	flags.StringVar(&f.poles, "poles", "", "placement: the error-dynamics eigenvalues (`LIST`), comma-separated, real or complex pairs: \"0.8,0.8,0.7+0.1i,0.7-0.1i\" (0.7±0.1i stands for the pair)")
 	flags.Float64Var(&f.faster, "faster", 0, "placement by rule of thumb: observer poles `F` times faster than the plant's own modes")
 	flags.BoolVar(&f.patterns, "patterns", false, "also design a gain for every subset of the outputs that can be estimated from (so a missing sensor still corrects)")
-	flags.StringVar(&f.name, "name", "", "the gain set's `name` (default <method>-<form>)")
+	flags.StringVar(&f.name, "name", "", "the gain set's `NAME` (default: METHOD-FORM, such as kalman-current)")
 	flags.BoolVar(&f.add, "add", false, "add the set to the existing gains file, replacing a set of the same name, instead of rewriting the file")
 	flags.BoolVar(&f.candidate, "candidate", false, "mark the set as the candidate (run in shadow) instead of the active set; needs --add")
 	flags.StringVar(&f.out, "o", "", "write the gains file to `FILE` instead of the plant's gains path; - for standard output")
-	flags.StringVar(&f.when, "time", "", "the design `time` recorded in the provenance, RFC 3339 (default $SOURCE_DATE_EPOCH, else now)")
+	flags.StringVar(&f.when, "time", "", "the design `TIME` recorded in the provenance, RFC 3339 (default: $SOURCE_DATE_EPOCH, else now)")
 	pos, err := parseArgs(flags, args)
 	if err != nil {
 		return err
@@ -86,7 +87,7 @@ func runDesign(_ context.Context, e *env, args []string) error {
 	prov := config.Provenance{Method: method, Created: created, Tool: toolVersion()}
 	var set *estimator.GainSet
 	switch method {
-	case "place":
+	case "poles":
 		var poles []complex128
 		if f.poles != "" {
 			if poles, err = parsePoles(f.poles); err != nil {
@@ -185,13 +186,16 @@ func (f *designFlags) check(fs *flag.FlagSet) (estimator.Form, string, error) {
 	if method == "" {
 		method = "kalman"
 		if set["poles"] || set["faster"] {
-			method = "place"
+			method = "poles"
 		}
 	}
+	if method == "place" {
+		method = "poles" // the word earlier versions took
+	}
 	switch method {
-	case "place":
+	case "poles":
 		if f.poles == "" && !set["faster"] {
-			return 0, "", usageError("--method place needs its poles: --poles \"p1,p2,…\" (one per state) or --faster F")
+			return 0, "", usageError("--method poles needs its poles: --poles \"p1,p2,…\" (one per state) or --faster F")
 		}
 		if f.poles != "" && set["faster"] {
 			return 0, "", usageError("give --poles or --faster, not both")
@@ -201,10 +205,10 @@ func (f *designFlags) check(fs *flag.FlagSet) (estimator.Form, string, error) {
 		}
 	case "kalman":
 		if set["poles"] || set["faster"] {
-			return 0, "", usageError("--poles and --faster are for --method place; a Kalman design takes its poles from the noise")
+			return 0, "", usageError("--poles and --faster are for --method poles; a Kalman design takes its poles from the noise")
 		}
 	default:
-		return 0, "", usageError("--method %q: want place or kalman", method)
+		return 0, "", usageError("--method %q: want poles or kalman", method)
 	}
 	if f.candidate && !f.add {
 		return 0, "", usageError("--candidate needs --add: a new gains file needs an active set")
@@ -350,7 +354,7 @@ func writeDesignSummary(out io.Writer, plant *config.Plant, g *config.GainsFile,
 	md := plant.Model
 	_, _, p := md.Dims()
 	how := "steady-state Kalman gains for the plant's noise"
-	if prov.Method == "place" {
+	if prov.Method == "poles" {
 		how = "pole placement at " + fpoles(prov.Poles)
 		if prov.Factor != 0 {
 			how += fmt.Sprintf(" (%s× faster than the plant)", fnum(prov.Factor))
@@ -384,5 +388,6 @@ func writeDesignSummary(out io.Writer, plant *config.Plant, g *config.GainsFile,
 		roles += ", candidate " + g.Candidate
 	}
 	fmt.Fprintf(&buf, "wrote %s (%s; %s)\n", where, fmt.Sprintf("%d %s", len(g.Sets), pluralWord(len(g.Sets), "gain set", "gain sets")), roles)
+	fmt.Fprintln(&buf, check.Caution)
 	out.Write(buf.Bytes())
 }

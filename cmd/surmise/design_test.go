@@ -58,7 +58,7 @@ func near(t *testing.T, what string, got, want, tol float64) {
 }
 
 // TestDesignDoubleIntegratorGolden places both observer poles of the double
-// integrator at 0.5; the written gains are the closed forms of REFERENCES.md:
+// integrator at 0.5; the written gains are the closed forms of SOURCES.md: double-integrator-placement,
 // L_p = [1, 2.5], L_c = [0.75, 2.5].
 func TestDesignDoubleIntegratorGolden(t *testing.T) {
 	for _, tc := range []struct {
@@ -72,7 +72,7 @@ func TestDesignDoubleIntegratorGolden(t *testing.T) {
 			pf := plantPath("cmd:double-integrator.yaml")
 			data := designGolden(t, "design-double-integrator-"+tc.form, "--form", tc.form, "--poles", "0.5, 0.5", pf)
 			plant, g := loadDesigned(t, pf, data)
-			name := "place-" + tc.form
+			name := "poles-" + tc.form
 			if g.Active != name || g.Candidate != "" || len(g.Sets) != 1 {
 				t.Fatalf("active %q, candidate %q, %d sets; want %q alone", g.Active, g.Candidate, len(g.Sets), name)
 			}
@@ -84,7 +84,7 @@ func TestDesignDoubleIntegratorGolden(t *testing.T) {
 			near(t, "L[0]", l.At(0, 0), tc.want[0], 1e-9)
 			near(t, "L[1]", l.At(1, 0), tc.want[1], 1e-9)
 			pv := ns.Provenance
-			if pv.Method != "place" || len(pv.Poles) != 2 || pv.Poles[0] != 0.5 || pv.Poles[1] != 0.5 {
+			if pv.Method != "poles" || len(pv.Poles) != 2 || pv.Poles[0] != 0.5 || pv.Poles[1] != 0.5 {
 				t.Errorf("provenance %+v", pv)
 			}
 			if want := time.Date(2026, 12, 2, 0, 0, 0, 0, time.UTC); !pv.Created.Equal(want) {
@@ -108,7 +108,7 @@ func TestDesignDoubleIntegratorGolden(t *testing.T) {
 
 // TestDesignRandomWalkGolden designs the steady-state Kalman filter of the
 // scalar random walk, q = r = 1: K = 0.6180339887, P⁻ = 1.6180339887
-// (closed form, REFERENCES.md).
+// (closed form, SOURCES.md: random-walk-riccati).
 func TestDesignRandomWalkGolden(t *testing.T) {
 	pf := plantPath("cmd:random-walk.yaml")
 	pMinus := (1 + math.Sqrt(5)) / 2 // (q + √(q² + 4qr))/2
@@ -299,18 +299,18 @@ func TestDesignAdd(t *testing.T) {
 	}
 	step(0, "--poles", "0.5,0.5", "--form", "prediction")
 	step(0, "--add", "--candidate")
-	if a, c, s := roles(); a != "place-prediction" || c != "kalman-current" || strings.Join(s, ",") != "place-prediction,kalman-current" {
+	if a, c, s := roles(); a != "poles-prediction" || c != "kalman-current" || strings.Join(s, ",") != "poles-prediction,kalman-current" {
 		t.Fatalf("after adding the candidate: active %q, candidate %q, sets %v", a, c, s)
 	}
 	// Replacing the candidate keeps the active set.
 	step(0, "--add", "--candidate", "--faster", "2", "--name", "kalman-current")
 	a, c, s := roles()
-	if a != "place-prediction" || c != "kalman-current" || len(s) != 2 {
+	if a != "poles-prediction" || c != "kalman-current" || len(s) != 2 {
 		t.Fatalf("after replacing the candidate: active %q, candidate %q, sets %v", a, c, s)
 	}
 	// A new active set keeps the candidate.
-	step(0, "--add", "--poles", "0.6,0.6", "--form", "prediction", "--name", "place-0.6")
-	if a, c, s := roles(); a != "place-0.6" || c != "kalman-current" || len(s) != 3 {
+	step(0, "--add", "--poles", "0.6,0.6", "--form", "prediction", "--name", "poles-0.6")
+	if a, c, s := roles(); a != "poles-0.6" || c != "kalman-current" || len(s) != 3 {
 		t.Fatalf("after a new active set: active %q, candidate %q, sets %v", a, c, s)
 	}
 	// Promoting the candidate by designing it again as active clears the candidate.
@@ -347,8 +347,8 @@ func TestDesignRefusals(t *testing.T) {
 		{"pole without its conjugate", []string{"--poles", "0.5+0.1i,0.5", di}, 1, "conjugate"},
 		{"placement without poles", []string{"--method", "place", di}, 2, "--poles"},
 		{"poles and faster", []string{"--poles", "0.5,0.5", "--faster", "2", di}, 2, "not both"},
-		{"kalman with poles", []string{"--method", "kalman", "--poles", "0.5,0.5", di}, 2, "--method place"},
-		{"unknown method", []string{"--method", "guess", di}, 2, "place or kalman"},
+		{"kalman with poles", []string{"--method", "kalman", "--poles", "0.5,0.5", di}, 2, "--method poles"},
+		{"unknown method", []string{"--method", "guess", di}, 2, "poles or kalman"},
 		{"kalman form", []string{"--form", "kalman", di}, 2, "prediction or current"},
 		{"bad pole", []string{"--poles", "0.5,half", di}, 2, `"half"`},
 		{"no plant", nil, 2, "one plant file"},

@@ -12,6 +12,8 @@ import (
 	"io"
 	"os"
 	"os/signal"
+	"strconv"
+	"strings"
 	"syscall"
 )
 
@@ -66,12 +68,25 @@ func main() {
 
 // run dispatches to a verb and turns its error into an exit status.
 func run(ctx context.Context, e *env, args []string) int {
-	if len(args) == 0 || args[0] == "help" || args[0] == "-h" || args[0] == "--help" {
+	if len(args) == 0 {
+		usage(e.stderr)
+		return 2
+	}
+	if args[0] == "-h" || args[0] == "--help" || args[0] == "-help" {
 		usage(e.stdout)
-		if len(args) == 0 {
+		return 0
+	}
+	if args[0] == "help" {
+		switch {
+		case len(args) == 1:
+			usage(e.stdout)
+			return 0
+		case len(args) > 2:
+			fmt.Fprintf(e.stderr, "surmise help: want at most one command, got %q\n", args[1:])
 			return 2
 		}
-		return 0
+		// `surmise help VERB` is `surmise VERB -h`.
+		args = []string{args[1], "-h"}
 	}
 	if args[0] == "--version" || args[0] == "-version" {
 		args = []string{"version"}
@@ -88,7 +103,7 @@ func run(ctx context.Context, e *env, args []string) int {
 		case errors.Is(err, flag.ErrHelp):
 			return 0
 		case errors.Is(err, errUsage):
-			fmt.Fprintf(e.stderr, "surmise %s: %v\n", v.name, err)
+			fmt.Fprintf(e.stderr, "surmise %s: %v\nRun 'surmise %s -h' for its usage and flags.\n", v.name, err, v.name)
 			return 2
 		case errors.As(err, &ee):
 			if ee.msg != "" {
@@ -100,8 +115,15 @@ func run(ctx context.Context, e *env, args []string) int {
 			return 1
 		}
 	}
-	fmt.Fprintf(e.stderr, "surmise: unknown command %q\n\n", args[0])
-	usage(e.stderr)
+	fmt.Fprintf(e.stderr, "surmise: unknown command %q", args[0])
+	var names []string
+	for _, v := range verbs() {
+		names = append(names, v.name)
+	}
+	if s := closest(args[0], names); s != "" {
+		fmt.Fprintf(e.stderr, " (did you mean %q?)", s)
+	}
+	fmt.Fprintln(e.stderr, "\nRun 'surmise help' for the list of commands.")
 	return 2
 }
 
@@ -111,17 +133,59 @@ func usage(w io.Writer) {
 	for _, v := range verbs() {
 		fmt.Fprintf(w, "  %-10s %s\n", v.name, v.summary)
 	}
-	fmt.Fprintln(w, "\nRun 'surmise <command> -h' for the flags of a command.")
+	fmt.Fprintln(w, "\nRun 'surmise help <command>' (or 'surmise <command> -h') for the usage and flags of a command.")
 }
 
 // newFlags returns a flag set for a verb that reports errors instead of
-// exiting, writing its help to the verb's stderr.
+// exiting. Help (-h, --help, `surmise help VERB`) goes to the verb's stdout;
+// a bad flag is reported by parseArgs in one line with a suggestion, not with
+// the whole usage.
 func newFlags(e *env, name, synopsis string) *flag.FlagSet {
 	fs := flag.NewFlagSet(name, flag.ContinueOnError)
-	fs.SetOutput(e.stderr)
-	fs.Usage = func() {
-		fmt.Fprintf(e.stderr, "Usage: surmise %s %s\n\nFlags:\n", name, synopsis)
-		fs.PrintDefaults()
-	}
+	fs.SetOutput(io.Discard)
+	fs.Usage = func() { printHelp(e.stdout, fs, synopsis) }
 	return fs
+}
+
+// printHelp writes a verb's usage line, its description and its flags, each
+// flag as "--name PLACEHOLDER" with its default when it has one that is not
+// the zero value.
+func printHelp(w io.Writer, fs *flag.FlagSet, synopsis string) {
+	fmt.Fprintln(w, strings.TrimSpace("Usage: surmise "+fs.Name()+" "+synopsis))
+	n := 0
+	fs.VisitAll(func(*flag.Flag) { n++ })
+	if n == 0 {
+		return
+	}
+	fmt.Fprintln(w, "\nFlags:")
+	fs.VisitAll(func(f *flag.Flag) {
+		placeholder, text := flag.UnquoteUsage(f)
+		line := "  --" + f.Name
+		if len(f.Name) == 1 {
+			line = "  -" + f.Name
+		}
+		if placeholder != "" {
+			line += " " + placeholder
+		}
+		fmt.Fprintln(w, line)
+		if def := shownDefault(f); def != "" {
+			text += " (default " + def + ")"
+		}
+		fmt.Fprintf(w, "      %s\n", strings.ReplaceAll(text, "\n", "\n      "))
+	})
+}
+
+// shownDefault is a flag's default as help shows it: "" for a zero value
+// (false, 0, "", 0s), which help leaves out.
+func shownDefault(f *flag.Flag) string {
+	switch f.DefValue {
+	case "", "false", "0", "0s", "[]":
+		return ""
+	}
+	if g, ok := f.Value.(flag.Getter); ok {
+		if _, ok := g.Get().(string); ok {
+			return strconv.Quote(f.DefValue)
+		}
+	}
+	return f.DefValue
 }

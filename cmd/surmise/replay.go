@@ -61,16 +61,16 @@ type replayFlags struct {
 func runReplay(_ context.Context, e *env, args []string) error {
 	fs := newFlags(e, "replay", replaySynopsis)
 	var f replayFlags
-	fs.StringVar(&f.data, "data", "", "the recording: a historian CSV or a bus recording (`FILE`)")
+	fs.StringVar(&f.data, "data", "", "the recording `FILE`: a historian CSV or a bus recording")
 	fs.Var(&f.gains, "gains", "gains `FILE` or FILE:SET to run (repeat for several; default: the plant's active and candidate sets)")
 	fs.StringVar(&f.outCSV, "out-csv", "", "write the estimates to `FILE` as CSV")
 	fs.StringVar(&f.reportPath, "report", "", "write the HTML report to `FILE`")
-	fs.StringVar(&f.tz, "tz", "", "time `zone` of CSV times written without one, such as Europe/Berlin")
-	fs.StringVar(&f.timeColumn, "time-column", "", "CSV time column `name` (default: the first column)")
-	fs.StringVar(&f.delimiter, "delimiter", ",", "CSV field `delimiter`")
+	fs.StringVar(&f.tz, "tz", "", "time `ZONE` of CSV times written without one, such as Europe/Berlin")
+	fs.StringVar(&f.timeColumn, "time-column", "", "CSV time column `NAME` (default: the first column)")
+	fs.StringVar(&f.delimiter, "delimiter", ",", "CSV field `DELIMITER`")
 	fs.BoolVar(&f.decimalComma, "decimal-comma", false, "CSV numbers use a decimal comma (needs another --delimiter)")
-	fs.StringVar(&f.start, "start", "", "`time` of the first tick, RFC 3339 (default: the first sample's receive time)")
-	fs.StringVar(&f.end, "end", "", "`time` at or after which the last tick falls (default: the last sample's)")
+	fs.StringVar(&f.start, "start", "", "`TIME` of the first tick, RFC 3339 (default: chosen from the recording as described above)")
+	fs.StringVar(&f.end, "end", "", "`TIME` at or after which the last tick falls, RFC 3339 (default: the last sample's)")
 	fs.BoolVar(&f.allIssues, "all-issues", false, "print every issue of the recording, not only the first 100")
 	pos, err := parseArgs(fs, args)
 	if err != nil {

@@ -39,7 +39,7 @@ func TestReplayFixtures(t *testing.T) {
 			for _, want := range []string{
 				"replayed hotwater-loop on " + recordingPath(tc.data) + ": " + tc.ticks + ", 2 gain sets",
 				"heater_power: 240 offered",
-				"place-prediction (prediction)", "kalman-current (current)",
+				"poles-prediction (prediction)", "kalman-current (current)",
 				"error       element_temp", "wrote " + out + " (" + strconv.Itoa(2*n) + " rows)", "wrote " + html,
 			} {
 				if !strings.Contains(stdout, want) {
@@ -62,7 +62,7 @@ func TestReplayFixtures(t *testing.T) {
 			if n := strings.Count(string(page), "<svg"); n < 7 {
 				t.Errorf("%d SVG plots in the report, want at least 7", n)
 			}
-			for _, want := range []string{"place-prediction", "kalman-current", "element_temp", "hx_outlet"} {
+			for _, want := range []string{"poles-prediction", "kalman-current", "element_temp", "hx_outlet"} {
 				if !strings.Contains(string(page), want) {
 					t.Errorf("the report does not mention %s", want)
 				}
@@ -79,7 +79,7 @@ func TestReplayFixtures(t *testing.T) {
 			if len(rows) != 2*n+1 || rows[0][0] != "time" || rows[0][len(rows[0])-1] != "truth.heat_loss" {
 				t.Fatalf("%d rows, header %q", len(rows), rows[0])
 			}
-			if rows[1][1] != "place-prediction" || rows[2][1] != "kalman-current" || rows[1][0] != rows[2][0] {
+			if rows[1][1] != "poles-prediction" || rows[2][1] != "kalman-current" || rows[1][0] != rows[2][0] {
 				t.Errorf("the first tick's rows: %q, %q", rows[1][:4], rows[2][:4])
 			}
 			if st, err := os.Stat(out); err != nil || st.Mode().Perm() != 0o644 {
@@ -100,7 +100,7 @@ func TestReplayGainsFlags(t *testing.T) {
 	}{
 		{[]string{"--gains", gains}, 0, "1 gain set\n"},
 		{[]string{"--gains", gains + ":kalman-current"}, 0, "kalman-current (current)"},
-		{[]string{"--gains", gains, "--gains", gains}, 0, "place-prediction (" + gains + ") (prediction)"},
+		{[]string{"--gains", gains, "--gains", gains}, 0, "poles-prediction (" + gains + ") (prediction)"},
 		{[]string{"--gains", gains + ":nonesuch"}, 1, `has no gain set "nonesuch"`},
 		{[]string{"--gains", "no-such.gains.yaml"}, 1, "does not exist"},
 		{[]string{"--tz", "Mars/Olympus"}, 2, `--tz "Mars/Olympus"`},

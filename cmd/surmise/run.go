@@ -32,8 +32,11 @@ publish samples and read estimates. With --nats it connects to the servers
 given, and reconnects by itself when they go away; estimates are not
 published while disconnected (the estimator keeps ticking, coasting).
 
-HTTP (--listen): /metrics (Prometheus), /healthz (the tick loop advances),
-/readyz (bus connected, gains valid, first tick done).
+HTTP (--listen, by default http://127.0.0.1:9731): the live page at /, for a
+browser (each estimator's status, estimates with their uncertainty,
+innovations, NIS and gain sets, updated as they change); /metrics
+(Prometheus); /healthz (the tick loop advances); /readyz (bus connected,
+gains valid, first tick done, and at least one sample received).
 
 Gains change without a restart: SIGHUP, or a change of a plant's gains file
 (its directory is watched), reloads them; a candidate set named in the gains
@@ -66,19 +69,19 @@ func runRun(ctx context.Context, e *env, args []string) error {
 	flags := newFlags(e, "run", runSynopsis)
 	var f runFlags
 	flags.StringVar(&f.nats, "nats", "", "NATS server `URL`s, comma-separated (default: start an embedded server)")
-	flags.IntVar(&f.natsPort, "nats-port", daemon.DefaultEmbeddedPort, "loopback `port` of the embedded server; the default falls back to a random free port when taken, -1 always picks one")
+	flags.IntVar(&f.natsPort, "nats-port", daemon.DefaultEmbeddedPort, "loopback `PORT` of the embedded server; the default falls back to a random free port when taken, -1 always picks one")
 	flags.StringVar(&f.creds, "creds", "", "NATS user credentials `FILE` (JWT and seed)")
 	flags.StringVar(&f.nkey, "nkey", "", "NATS user NKey seed `FILE`")
 	flags.StringVar(&f.tlsCA, "tls-ca", "", "PEM `FILE` of the CAs that sign the NATS server's certificate")
 	flags.StringVar(&f.tlsCert, "tls-cert", "", "PEM client certificate `FILE` for NATS")
 	flags.StringVar(&f.tlsK, "tls-key", "", "PEM client key `FILE` for NATS")
-	flags.StringVar(&f.listen, "listen", daemon.DefaultHTTPAddr, "HTTP `address` for /metrics, /healthz and /readyz")
-	flags.StringVar(&f.logFormat, "log-format", "text", "log `format`: text or json (on standard error)")
-	flags.StringVar(&f.logLevel, "log-level", "info", "log `level`: debug, info, warn or error")
-	flags.StringVar(&f.stateDir, "state-dir", "", "`directory` for the embedded server's JetStream store (default: a temporary one, removed at exit)")
-	flags.StringVar(&f.metrics, "metrics", "full", "per-estimator metric `level`: full (every series) or summary (health only, for many estimators)")
+	flags.StringVar(&f.listen, "listen", daemon.DefaultHTTPAddr, "HTTP `ADDRESS` of the live page (/), /metrics, /healthz and /readyz")
+	flags.StringVar(&f.logFormat, "log-format", "text", "log `FORMAT`: text or json (on standard error)")
+	flags.StringVar(&f.logLevel, "log-level", "info", "log `LEVEL`: debug, info, warn or error")
+	flags.StringVar(&f.stateDir, "state-dir", "", "`DIRECTORY` for the embedded server's JetStream store (default: a temporary one, removed at exit)")
+	flags.StringVar(&f.metrics, "metrics", "full", "per-estimator metric `LEVEL`: full (every series) or summary (health only, for many estimators)")
 	flags.StringVar(&f.fleet, "fleet", "", "join the fleet `NAME`: run its share of the estimators of its bucket instead of plant files")
-	flags.StringVar(&f.instance, "instance", "", "`name` of this daemon in its estimates and its fleet (default host-pid)")
+	flags.StringVar(&f.instance, "instance", "", "`NAME` of this daemon in its estimates and its fleet (default host-pid)")
 	pos, err := parseArgs(flags, args)
 	if err != nil {
 		return err
@@ -148,7 +151,7 @@ func runRun(ctx context.Context, e *env, args []string) error {
 				where += ")"
 			}
 			fmt.Fprintf(e.stdout, "bus:  %s\n", where)
-			fmt.Fprintf(e.stdout, "http: http://%s/metrics /healthz /readyz\n", ep.HTTPAddr)
+			fmt.Fprintf(e.stdout, "http: http://%s/ (live page)  /metrics  /healthz  /readyz\n", ep.HTTPAddr)
 			if fleet != nil {
 				fmt.Fprintf(e.stdout, "fleet %s: instance %s\n", fleet.Name, f.instance)
 			}

@@ -75,7 +75,7 @@ func TestRunEndToEnd(t *testing.T) {
 	}()
 
 	url := stdout.waitMatch(t, regexp.MustCompile(`(?m)^bus:  (nats://127\.0\.0\.1:\d+) \(embedded server\)$`), 20*time.Second)
-	stdout.waitMatch(t, regexp.MustCompile(`(?m)^(http): http://127\.0\.0\.1:\d+/metrics`), time.Second)
+	stdout.waitMatch(t, regexp.MustCompile(`(?m)^(http): http://127\.0\.0\.1:\d+/ \(live page\)`), time.Second)
 	nc, err := nats.Connect(url)
 	if err != nil {
 		t.Fatal(err)
@@ -109,8 +109,8 @@ func TestRunEndToEnd(t *testing.T) {
 	}
 	// The active set of testdata/plants/hotwater-loop.gains.yaml, and its
 	// four states.
-	if est.Seq < 1 || est.Gains != "place-prediction" || len(est.States) != 4 {
-		t.Errorf("estimate %s: want seq ≥ 1, gains place-prediction, 4 states", msg.Data)
+	if est.Seq < 1 || est.Gains != "poles-prediction" || len(est.States) != 4 {
+		t.Errorf("estimate %s: want seq ≥ 1, gains poles-prediction, 4 states", msg.Data)
 	}
 	// --log-format json: every line of the log is a JSON object.
 	for _, line := range strings.Split(strings.TrimSpace(stderr.String()), "\n") {

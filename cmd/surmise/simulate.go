@@ -7,6 +7,8 @@ import (
 	"flag"
 	"fmt"
 	"io/fs"
+	"net"
+	"net/url"
 	"os"
 	"slices"
 	"strings"
@@ -37,10 +39,22 @@ scenario and start give the same file.
 
 --speed scales time: 10 runs the plant ten times faster than real time. An
 estimator only keeps up with a sped-up plant when it ticks at the same scale
-('surmise demo --speed' does that); 'surmise run' ticks in real time.`
+('surmise demo --speed' does that); 'surmise run' ticks in real time.
+
+Caution: the messages are invented, but look like a plant's measurements and
+controller outputs. By default they go out under the subject prefix "sim."
+(sim.pilot.hwl.tt110.pv), where nothing of the plant listens, and only to a
+NATS server on this machine (a loopback address). To feed an estimator on
+its wired subjects — a 'surmise run' of a copy of the plant file on this
+machine, while commissioning — give --prefix ''. --remote allows a server on
+another machine: never point it at a server that carries a running plant's
+subjects, where interlocks, historians or controllers could take simulated
+values for real ones.`
 
 type simulateFlags struct {
 	nats, scenario, out, csv, start string
+	prefix                          string
+	remote                          bool
 	initial                         string
 	seed                            uint64
 	speed                           float64
@@ -52,15 +66,17 @@ func runSimulate(ctx context.Context, e *env, args []string) error {
 	fs := newFlags(e, "simulate", simulateSynopsis)
 	var f simulateFlags
 	fs.StringVar(&f.nats, "nats", nats.DefaultURL, "NATS server `URL` to publish to")
-	fs.Uint64Var(&f.seed, "seed", 1, "`seed` of the noise, the initial state, the PRBS phase and the jitter")
-	fs.Float64Var(&f.speed, "speed", 1, "time `scale`: 1 is real time, 10 ten times faster")
+	fs.StringVar(&f.prefix, "prefix", "sim.", "put `PREFIX` before every published subject; '' publishes on the plant file's own subjects")
+	fs.BoolVar(&f.remote, "remote", false, "allow a NATS server that is not on this machine (see the caution above)")
+	fs.Uint64Var(&f.seed, "seed", 1, "`SEED` of the noise, the initial state, the PRBS phase and the jitter")
+	fs.Float64Var(&f.speed, "speed", 1, "time `SCALE`: 1 is real time, 10 ten times faster")
 	fs.StringVar(&f.scenario, "scenario", "rehearsal", "scenario `FILE`, or a built-in: "+strings.Join(simplant.BuiltinNames, ", "))
-	fs.DurationVar(&f.length, "for", 0, "plant `time` to run (default: until interrupted; with --out or --csv, the scenario's length)")
+	fs.DurationVar(&f.length, "for", 0, "plant time to run, a `DURATION` such as 2m (default: until interrupted; with --out or --csv, the scenario's length)")
 	fs.StringVar(&f.out, "out", "", "write a bus recording to `FILE` instead of publishing")
 	fs.StringVar(&f.csv, "csv", "", "write a historian-style CSV to `FILE` instead of publishing")
-	fs.StringVar(&f.start, "start", "", "`time` of the first sample for --out and --csv, RFC 3339 (default: now)")
+	fs.StringVar(&f.start, "start", "", "`TIME` of the first sample for --out and --csv, RFC 3339 (default: now)")
 	fs.BoolVar(&f.printScenario, "print-scenario", false, "print the scenario as a file and exit")
-	fs.StringVar(&f.initial, "initial", "nominal", "true initial `state`: nominal (the plant file's initial state) or draw (a draw from its initial covariance around it)")
+	fs.StringVar(&f.initial, "initial", "nominal", "true initial `STATE`: nominal (the plant file's initial state) or draw (a draw from its initial covariance around it)")
 	pos, err := parseArgs(fs, args)
 	if err != nil {
 		return err
@@ -78,12 +94,20 @@ func runSimulate(ctx context.Context, e *env, args []string) error {
 		return usageError("--for %v: want a positive duration", f.length)
 	case toFile && explicit["speed"]:
 		return usageError("--speed paces publishing; --out and --csv write plant time at once")
-	case toFile && explicit["nats"]:
-		return usageError("--out and --csv write a file; they publish nothing to --nats")
+	case toFile && (explicit["nats"] || explicit["prefix"] || explicit["remote"]):
+		return usageError("--out and --csv write a file; they publish nothing (--nats, --prefix and --remote are for publishing)")
+	case f.prefix != "" && !validPrefix(f.prefix):
+		return usageError("--prefix %q: want subject tokens ending in a dot, such as sim. or test.rig1.", f.prefix)
+
 	case f.initial != "nominal" && f.initial != "draw":
 		return usageError("--initial %q: want nominal or draw", f.initial)
 	case f.start != "" && !toFile:
 		return usageError("--start is the time of the first sample of --out or --csv; published samples carry the time they are sent")
+	}
+	if !toFile && !f.remote {
+		if err := loopbackOnly(f.nats); err != nil {
+			return usageError("%v", err)
+		}
 	}
 	plant, err := config.LoadPlant(pos[0])
 	if err != nil {
@@ -104,20 +128,27 @@ func runSimulate(ctx context.Context, e *env, args []string) error {
 	if err != nil {
 		return err
 	}
-	nc, err := nats.Connect(f.nats, nats.Name("surmise-simulate"), nats.MaxReconnects(-1), nats.ReconnectBufSize(-1))
+	opts := []nats.Option{nats.Name("surmise-simulate"), nats.MaxReconnects(-1), nats.ReconnectBufSize(-1)}
+	if !f.remote {
+		// A loopback server's cluster may name peers on other machines:
+		// reconnect only to the servers given.
+		opts = append(opts, nats.IgnoreDiscoveredServers())
+	}
+	nc, err := nats.Connect(f.nats, opts...)
 	if err != nil {
 		return fmt.Errorf("connecting to %s: %w (is a server running? 'surmise run' and 'surmise demo' start one)", f.nats, err)
 	}
 	defer nc.Close()
-	describeSimulation(e, plant, sc, f.seed, f.speed)
-	fmt.Fprintf(e.stdout, "publishing to %s", nc.ConnectedUrlRedacted())
+	describeSimulation(e, plant, sc, f.seed, f.speed, f.prefix)
+	fmt.Fprintf(e.stdout, "publishing invented values to %s", nc.ConnectedUrlRedacted())
 	if f.length > 0 {
 		fmt.Fprintf(e.stdout, " for %v of plant time", f.length)
 	}
 	fmt.Fprintln(e.stdout, "; interrupt to stop")
 	stats, err := simplant.Publish(ctx, nc, simplant.NewStream(sim), simplant.PublishOptions{
-		Clock: simplant.Clock{Speed: f.speed},
-		For:   f.length,
+		Clock:  simplant.Clock{Speed: f.speed},
+		For:    f.length,
+		Prefix: f.prefix,
 	})
 	if ferr := nc.FlushTimeout(5 * time.Second); err == nil && ferr != nil && !errors.Is(ferr, nats.ErrConnectionClosed) {
 		err = fmt.Errorf("flushing the last samples: %w", ferr)
@@ -146,7 +177,7 @@ func loadScenario(name string, plant *config.Plant) (*simplant.Scenario, error) 
 }
 
 // describeSimulation prints where the simulated plant's signals go.
-func describeSimulation(e *env, plant *config.Plant, sc *simplant.Scenario, seed uint64, speed float64) {
+func describeSimulation(e *env, plant *config.Plant, sc *simplant.Scenario, seed uint64, speed float64, prefix string) {
 	name := sc.Name
 	if name == "" {
 		name = "(unnamed)"
@@ -158,13 +189,13 @@ func describeSimulation(e *env, plant *config.Plant, sc *simplant.Scenario, seed
 	fmt.Fprintf(e.stdout, "simulated plant %s: sample time %v, seed %d, speed %g, scenario %s (%v%s, %d events)\n",
 		plant.Name, time.Duration(plant.Model.Ts*float64(time.Second)), seed, speed, name, sc.Length, repeat, len(sc.Events))
 	for _, w := range plant.Inputs {
-		fmt.Fprintf(e.stdout, "  input  %-14s %s\n", w.Signal, w.Subject)
+		fmt.Fprintf(e.stdout, "  input  %-14s %s%s\n", w.Signal, prefix, w.Subject)
 	}
 	for _, w := range plant.Outputs {
-		fmt.Fprintf(e.stdout, "  output %-14s %s\n", w.Signal, w.Subject)
+		fmt.Fprintf(e.stdout, "  output %-14s %s%s\n", w.Signal, prefix, w.Subject)
 	}
 	for _, s := range plant.Model.States {
-		fmt.Fprintf(e.stdout, "  truth  %-14s %s\n", s.Name, plant.TruthSubject(s.Name))
+		fmt.Fprintf(e.stdout, "  truth  %-14s %s%s\n", s.Name, prefix, plant.TruthSubject(s.Name))
 	}
 }
 
@@ -231,3 +262,41 @@ func simulateToFiles(e *env, plant *config.Plant, sc *simplant.Scenario, f *simu
 type noFlush struct{ w *bufio.Writer }
 
 func (n noFlush) Write(p []byte) (int, error) { return n.w.Write(p) }
+
+// validPrefix reports whether p is one or more subject tokens, each ending
+// in a dot: no spaces, no wildcards, no empty token.
+func validPrefix(p string) bool {
+	if !strings.HasSuffix(p, ".") {
+		return false
+	}
+	for _, tok := range strings.Split(strings.TrimSuffix(p, "."), ".") {
+		if tok == "" || tok == "*" || tok == ">" || strings.ContainsAny(tok, " \t\r\n") {
+			return false
+		}
+	}
+	return true
+}
+
+// loopbackOnly returns an error unless every server of urls (comma-separated
+// NATS URLs) is on this machine: localhost or a loopback address.
+func loopbackOnly(urls string) error {
+	for _, u := range strings.Split(urls, ",") {
+		u = strings.TrimSpace(u)
+		if !strings.Contains(u, "://") {
+			u = "nats://" + u
+		}
+		parsed, err := url.Parse(u)
+		if err != nil {
+			return fmt.Errorf("--nats %q: %v", u, err)
+		}
+		host := parsed.Hostname()
+		if host == "localhost" {
+			continue
+		}
+		if ip := net.ParseIP(host); ip != nil && ip.IsLoopback() {
+			continue
+		}
+		return fmt.Errorf("--nats %s is not on this machine: simulate publishes invented measurements, so it only talks to a loopback server unless --remote is given (read 'surmise simulate -h' first)", parsed.Redacted())
+	}
+	return nil
+}

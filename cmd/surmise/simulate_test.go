@@ -75,7 +75,7 @@ func TestSimulatePublishes(t *testing.T) {
 	if code != 0 {
 		t.Fatalf("exit %d: %s%s", code, stdout, stderr)
 	}
-	for _, want := range []string{"surmise.hotwater-loop.truth.heat_loss", "published 30 samples: 30 input, 60 output and 120 truth messages"} {
+	for _, want := range []string{"sim.surmise.hotwater-loop.truth.heat_loss", "published 30 samples: 30 input, 60 output and 120 truth messages"} {
 		if !strings.Contains(stdout, want) {
 			t.Errorf("stdout does not say %q:\n%s", want, stdout)
 		}
@@ -96,8 +96,28 @@ func TestSimulatePublishes(t *testing.T) {
 		}
 		time.Sleep(5 * time.Millisecond) // polling with a deadline
 	}
-	if counts["pilot.hwl.tt120.pv"] != 30 || counts["surmise.hotwater-loop.truth.element_temp"] != 30 {
+	// By default everything goes out under the simulation prefix, nothing
+	// on the plant's own subjects.
+	if counts["sim.pilot.hwl.tt120.pv"] != 30 || counts["sim.surmise.hotwater-loop.truth.element_temp"] != 30 || counts["pilot.hwl.tt120.pv"] != 0 {
 		t.Errorf("counts %v", counts)
+	}
+	// --prefix '' publishes on the wired subjects.
+	if _, stderr, code := cli(t, "simulate", plantPath("hotwater-loop.yaml"), "--nats", ns.ClientURL(), "--prefix", "",
+		"--scenario", "steady", "--for", "2s", "--speed", "100"); code != 0 {
+		t.Fatalf("--prefix '': exit %d: %s", code, stderr)
+	}
+	checkFor := time.Now().Add(10 * time.Second)
+	for {
+		mu.Lock()
+		n := counts["pilot.hwl.tt120.pv"]
+		mu.Unlock()
+		if n == 2 {
+			break
+		}
+		if time.Now().After(checkFor) {
+			t.Fatalf("%d messages on pilot.hwl.tt120.pv with --prefix '', want 2", n)
+		}
+		time.Sleep(5 * time.Millisecond) // polling with a deadline
 	}
 }
 
@@ -121,6 +141,15 @@ func TestSimulateUsage(t *testing.T) {
 		{[]string{plant, "--scenario", bad}, 1, bad + `:2:20: events[0].step: "tank_outlet" is an output`},
 		{[]string{}, 2, "want one plant file"},
 		{[]string{plant, "--nats", "nats://127.0.0.1:1", "--for", "1s"}, 1, "is a server running?"},
+		{[]string{plant, "--nats", "nats://[::1]:1", "--for", "1s"}, 1, "is a server running?"},
+		{[]string{plant, "--nats", "nats://localhost:1", "--for", "1s"}, 1, "is a server running?"},
+		// A server on another machine is refused before any connection.
+		{[]string{plant, "--nats", "nats://plant-bus.example:4222"}, 2, "is not on this machine"},
+		{[]string{plant, "--nats", "nats://127.0.0.1:1,nats://10.1.2.3:4222"}, 2, "nats://10.1.2.3:4222 is not on this machine"},
+		{[]string{plant, "--nats", "nats://192.0.2.1:1", "--remote", "--for", "1s"}, 1, "is a server running?"},
+		{[]string{plant, "--prefix", "sim"}, 2, `--prefix "sim": want subject tokens ending in a dot`},
+		{[]string{plant, "--prefix", "sim.>."}, 2, `want subject tokens`},
+		{[]string{plant, "--out", "x.jsonl", "--prefix", "x."}, 2, "they publish nothing"},
 	} {
 		stdout, stderr, code := cli(t, append([]string{"simulate"}, tc.args...)...)
 		if code != tc.code || !strings.Contains(stdout+stderr, tc.want) {

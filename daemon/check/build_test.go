@@ -8,7 +8,7 @@ import (
 
 // TestEigenKinds checks the description of single eigenvalues: a
 // continuous-time pole s sampled at Ts becomes λ = e^{s·Ts} (zero-order
-// hold, common practice), so a mode e^{−t/τ}·cos(ωt) has time constant τ and
+// hold, SOURCES.md: zoh-eigenvalues), so a mode e^{−t/τ}·cos(ωt) has time constant τ and
 // period 2π/ω.
 func TestEigenKinds(t *testing.T) {
 	const ts = 0.5

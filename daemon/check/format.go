@@ -8,11 +8,19 @@ import (
 )
 
 // FormatNum formats a number for a report: six significant digits, no "-0".
+// A number that six digits would round to ±1 but is not ±1 (an eigenvalue
+// of 0.99999978) gets the digits that show how far from 1 it is: "1" is
+// printed only for 1.
 func FormatNum(x float64) string {
 	if x == 0 {
 		return "0"
 	}
-	return strconv.FormatFloat(x, 'g', 6, 64)
+	s := strconv.FormatFloat(x, 'g', 6, 64)
+	if (s == "1" || s == "-1") && math.Abs(x) != 1 {
+		d := int(math.Ceil(-math.Log10(math.Abs(math.Abs(x)-1)))) + 2
+		s = strconv.FormatFloat(x, 'g', min(d, 17), 64)
+	}
+	return s
 }
 
 // FormatPole formats an eigenvalue as "0.81" or "0.5+0.2i" with six significant

@@ -7,7 +7,14 @@ import (
 	"strings"
 	"text/tabwriter"
 	"unicode/utf8"
+
+	"surmise/estimator"
 )
+
+// Caution is the line printed under a report that says an estimator can
+// run: what the estimates are and are not for.
+const Caution = "Caution: estimates are a model's inference, not measurements, and an estimator is not a safety function: " +
+	"interlocks and trips act on measured signals; commissioning follows local codes and licensed engineering practice."
 
 // WriteText renders the report for a terminal.
 func WriteText(out io.Writer, r *Report) {
@@ -73,7 +80,10 @@ func WriteText(out io.Writer, r *Report) {
 	}
 	tw.Flush()
 
-	pf("\nObservability (PBH test per mode: σ is the scaled smallest singular value of [λI − A; C], 0 = unseen)\n")
+	pf("\nObservability (PBH test per mode: σ is the smallest singular value of [λI − A; C] scaled by ‖A‖ + |λ| + ‖C‖;\n")
+	unseen := 100 * float64(r.Observability.Prediction.States+len(r.Model.Outputs)) * 0x1p-52
+	pf("  σ below the rounding tolerance 100·(n+p)·ε = %.2g (more for an ill-conditioned mode) = unseen;\n", unseen)
+	pf("  below %s = weak: seen, but an observer gain for it is large and noise-sensitive)\n", FormatNum(estimator.WeakModeThreshold))
 	pr, cu := &r.Observability.Prediction, &r.Observability.Current
 	for _, f := range []*Form{pr, cu} {
 		name := "prediction form"
@@ -207,6 +217,7 @@ func WriteText(out io.Writer, r *Report) {
 		} else {
 			pf("\nOK: the model is fit for an estimator; design its gains next.\n")
 		}
+		pf("%s\n", Caution)
 		return
 	}
 	pf("\nThe estimator cannot run:\n")
@@ -224,7 +235,7 @@ func WriteDynamics(w io.Writer, indent string, pts []Dynamics) {
 	var buf bytes.Buffer
 	defer func() { w.Write(trimLines(buf.Bytes())) }()
 	tw := tabwriter.NewWriter(&buf, 0, 0, 2, ' ', 0)
-	fmt.Fprintln(tw, indent+"outputs\tspectral radius\tconvergence\tNIS\terror-dynamics eigenvalues")
+	fmt.Fprintln(tw, indent+"outputs\tspectral radius\terror time constant\tNIS\terror-dynamics eigenvalues")
 	for _, pt := range pts {
 		conv := "not stable"
 		if pt.ConvergenceSeconds != nil {

@@ -2,7 +2,7 @@
 // Event from /events, drawn with uPlot. Plain script, no build step, nothing from the network.
 'use strict';
 (function () {
-  // The four statuses of a tick (DESIGN.md §3), each with a colour, a word, a shape and a level
+  // The four statuses of a tick (daemon/status.go), each with a colour, a word, a shape and a level
   // (its height in the status strip), so that no status is told by colour alone.
   const STATUS = {
     'tracking': { level: 1, color: '#1b7a3a', word: 'tracking', shape: 'circle', say: 'corrected with fresh measurements' },

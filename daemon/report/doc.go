@@ -20,7 +20,7 @@
 // (quantiles from gonum's distuv), the fraction of ticks whose windowed mean
 // NIS lies inside the band the engine computed for it, and per output the
 // innovation's mean and RMS and the whiteness test: the normalised
-// autocorrelation at lags 1 to 10 against ±1.96/√N (Mehra, 1970), the
+// autocorrelation at lags 1 to 10 against ±1.96/√N (after Mehra, 1970, cited from memory), the
 // sequence being called white when at most MaxOutside lags fall outside.
 // Which NIS a tick with an outlier carries is the driver's choice; the
 // statistics take every tick with Dof > 0 as it comes.

@@ -195,7 +195,7 @@ func summariseRun(in *Input, r *Run, bands *nisBands) Summary {
 //	ρ(j) = Σ_t (r_t − r̄)(r_{t+j} − r̄) / Σ_t (r_t − r̄)²
 //
 // Whiteness test after Mehra, "On the identification of variances and
-// adaptive Kalman filtering", IEEE TAC 15(2), 1970 (from memory): for a
+// adaptive Kalman filtering", IEEE TAC 15(2), 1970 (cited from memory): for a
 // white sequence of N values each ρ(j) lies inside ±1.96/√N with
 // probability about 0.95. A constant sequence gives NaNs; a lag at or
 // beyond the number of values gives 0. It returns dst.

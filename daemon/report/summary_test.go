@@ -12,7 +12,8 @@ import (
 )
 
 // reference is testdata/reference.json, computed by testdata/reference.py
-// with numpy 1.24 and scipy 1.10 from Debian.
+// with numpy 1.24 and scipy 1.10 from Debian (testdata/reference/SOURCES.md:
+// nis-band, mehra-whiteness).
 type reference struct {
 	Chi2TwoSided95 map[string][2]float64 `json:"chi2_two_sided_95"`
 	Binomial3of10  float64               `json:"binomial_3_of_10_at_0_05"`
@@ -192,7 +193,8 @@ func TestAutocorrelationClosedForm(t *testing.T) {
 
 // TestSummariseSeededDraws checks the statistics against their sampling
 // distributions: draws of a consistent filter land where chi-square and
-// Mehra's bound say, an overconfident one does not.
+// Mehra's bound say (SOURCES.md: chi2-table, mehra-whiteness), an
+// overconfident one does not.
 func TestSummariseSeededDraws(t *testing.T) {
 	const n = 40_000
 	src := rand.New(rand.NewPCG(7, 11))

@@ -50,6 +50,10 @@ type PublishOptions struct {
 	// For is how much plant time to run: messages of samples before For are
 	// published. Zero means until ctx is done.
 	For time.Duration
+	// Prefix, when not empty, is put before every subject: "sim." publishes
+	// pilot.hwl.tt110.pv as sim.pilot.hwl.tt110.pv, out of the way of the
+	// plant's real subjects.
+	Prefix string
 	// Published, when not nil, is called after each message is handed to
 	// the connection, with the message, its payload and its wall-clock
 	// sample time; it must be quick.
@@ -80,6 +84,7 @@ func Publish(ctx context.Context, nc Conn, st *Stream, opts PublishOptions) (Sta
 	}
 	var stats Stats
 	var payload []byte
+	prefixed := map[string]string{}
 	timer := time.NewTimer(time.Hour)
 	timer.Stop()
 	defer timer.Stop()
@@ -104,7 +109,16 @@ func Publish(ctx context.Context, nc Conn, st *Stream, opts PublishOptions) (Sta
 		}
 		at := clk.Wall(m.At)
 		payload = AppendPayload(payload[:0], m.Value, at)
-		if err := nc.Publish(m.Subject, payload); err != nil {
+		subject := m.Subject
+		if opts.Prefix != "" {
+			p, ok := prefixed[subject]
+			if !ok {
+				p = opts.Prefix + subject
+				prefixed[subject] = p
+			}
+			subject = p
+		}
+		if err := nc.Publish(subject, payload); err != nil {
 			stats.Failed++
 			continue
 		}

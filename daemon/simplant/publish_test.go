@@ -17,7 +17,7 @@ import (
 func TestAppendPayload(t *testing.T) {
 	at := time.Date(2026, 1, 5, 9, 0, 1, 500_000_000, time.FixedZone("CET", 3600))
 	got := string(AppendPayload(nil, 61.25, at))
-	// The payload form of DESIGN.md §5, the time in UTC.
+	// The payload form daemon.DecodeSample reads, the time in UTC.
 	if want := `{"value":61.25,"time":"2026-01-05T08:00:01.5Z"}`; got != want {
 		t.Errorf("got %s, want %s", got, want)
 	}

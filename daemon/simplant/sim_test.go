@@ -210,7 +210,8 @@ func TestSimEvents(t *testing.T) {
 // events against the plant file's measurement noise, 0.05 K per output:
 // y − (Y0 + C·x) is the drawn noise, whose sample variance over N draws
 // lies within ±5·√(2/N) of σ² with overwhelming probability (the variance of
-// a sample variance of normal draws is 2σ⁴/(N−1), a textbook closed form).
+// a sample variance of normal draws is 2σ⁴/(N−1); SOURCES.md:
+// sample-statistics).
 func TestMeasurementNoise(t *testing.T) {
 	plant := demoPlant(t)
 	sc := &Scenario{Name: "still", Length: time.Second, Events: []Event{{Kind: Step, Signal: "heater_power", Value: 6}}}
@@ -252,7 +253,7 @@ func TestMeasurementNoise(t *testing.T) {
 // covariance it is the initial state itself; with the demo plant's
 // (initial.std [5, 1, 3, 0.3]) the draws over many seeds have those
 // standard deviations (each within 5·σ/√(2N) of a sample standard
-// deviation's spread, a textbook large-sample bound).
+// deviation's spread, a large-sample bound; SOURCES.md: sample-statistics).
 func TestInitialDraw(t *testing.T) {
 	plant := demoPlant(t)
 	bare := *plant

@@ -28,7 +28,7 @@ from scipy import integrate, linalg
 HERE = os.path.dirname(os.path.abspath(__file__))
 
 # --- invented physical numbers (units in the comments) ---------------------------------------
-RHO_CP = 4.18      # kJ/(L·K), volumetric heat capacity of water near 60 °C
+RHO_CP = 4.18      # kJ/(L·K), volumetric heat capacity of water (from memory; a round number of ours)
 VOLUME = 40.0      # L, water in the tank
 C_VESSEL = 4.8     # kJ/K, stainless vessel wall that follows the water temperature
 C_E = 1.8          # kJ/K, heater element (sheath, insulation, coil)

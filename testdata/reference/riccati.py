@@ -144,7 +144,7 @@ def kalman_cases():
     r = np.array([[0.5, 0.1], [0.1, 0.3]])
     cases.append(("random3x2", a, c, q, r))
     # Sampled double integrator, T = 0.1, white acceleration q = 2, position
-    # measured with variance 0.01 (Q_d closed form, see REFERENCES.md).
+    # measured with variance 0.01 (Q_d closed form, SOURCES.md: double-integrator).
     ts, qc = 0.1, 2.0
     a = np.array([[1, ts], [0, 1]])
     c = np.array([[1.0, 0.0]])

@@ -17,7 +17,7 @@
  * Go benchmark's.
  *
  * The tick does the same arithmetic as Filter.Step with every output
- * present and the gate off (DESIGN.md §3), with straightforward hand-written
+ * present and the gate off, with straightforward hand-written
  * loops over row-major arrays of run-time size, one running sum per dot
  * product:
  *   prediction, current: x⁻ = A·x̂ + B·Δu(k−1) (+ L·r(k−1) in the prediction
