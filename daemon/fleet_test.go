@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"os"
 	"path/filepath"
+	"regexp"
 	"slices"
 	"strings"
 	"sync"
@@ -214,9 +215,10 @@ func TestFleetInProcess(t *testing.T) {
 	t.Logf("owners: %v", owners)
 
 	// New gains in the bucket go through the owner's check and swap: a
-	// file it refuses (the place-half candidate has no S, which the
-	// plant's gate needs) leaves the running set; a good one (kf active,
-	// no candidate) is swapped in. Only the gains' revision changes.
+	// file it refuses (the fixed-gain set as candidate has no S, which
+	// the plant's gate needs) leaves the running set; a good one (kf
+	// active, no candidate) is swapped in. Only the gains' revision
+	// changes.
 	last := names[len(names)-1]
 	status := func() (daemon.StatusReply, error) {
 		var st daemon.StatusReply
@@ -227,7 +229,8 @@ func TestFleetInProcess(t *testing.T) {
 		return st, err
 	}
 	before, _, _ := store.Get(ctx, last)
-	swapped := strings.Replace(strings.Replace(string(lastGains), "active: place-half", "active: kf", 1), "candidate: kf", "candidate: place-half", 1)
+	active := regexp.MustCompile(`(?m)^active: (\S+)$`).FindStringSubmatch(string(lastGains))[1]
+	swapped := strings.Replace(strings.Replace(string(lastGains), "active: "+active, "active: kf", 1), "candidate: kf", "candidate: "+active, 1)
 	if _, _, err := store.Put(ctx, last, before.Plant, []byte(swapped)); err != nil {
 		t.Fatal(err)
 	}
@@ -236,12 +239,12 @@ func TestFleetInProcess(t *testing.T) {
 		if err != nil {
 			return err
 		}
-		if st.LastReload == nil || st.LastReload.Result != "refused" || st.Active.Name != "place-half" {
-			return fmt.Errorf("%s runs %q, last reload %+v: want the refused file's reload and place-half kept", last, st.Active.Name, st.LastReload)
+		if st.LastReload == nil || st.LastReload.Result != "refused" || st.Active.Name != active {
+			return fmt.Errorf("%s runs %q, last reload %+v: want the refused file's reload and %s kept", last, st.Active.Name, st.LastReload, active)
 		}
 		return nil
 	})
-	good := strings.Replace(strings.Replace(string(lastGains), "active: place-half", "active: kf", 1), "candidate: kf\n", "", 1)
+	good := strings.Replace(strings.Replace(string(lastGains), "active: "+active, "active: kf", 1), "candidate: kf\n", "", 1)
 	if _, _, err := store.Put(ctx, last, before.Plant, []byte(good)); err != nil {
 		t.Fatal(err)
 	}

@@ -219,16 +219,9 @@ func ctlNameValues(flagName string, list []string) (map[string]float64, error) {
 
 // ctlRequest connects, sends the request and waits for the reply.
 func ctlRequest(ctx context.Context, f ctlFlags, msg *nats.Msg) (*nats.Msg, error) {
-	opts := []nats.Option{nats.Name("surmise ctl"), nats.Timeout(f.timeout), nats.NoReconnect()}
-	if f.creds != "" {
-		opts = append(opts, nats.UserCredentials(f.creds))
-	}
-	if f.tlsCA != "" {
-		opts = append(opts, nats.RootCAs(f.tlsCA))
-	}
-	nc, err := nats.Connect(f.nats, opts...)
+	nc, err := dialClient("surmise ctl", f.nats, f.creds, f.tlsCA, f.timeout)
 	if err != nil {
-		return nil, &exitError{code: 1, msg: fmt.Sprintf("cannot reach the bus at %s: %v", f.nats, err)}
+		return nil, err
 	}
 	defer nc.Close()
 	ctx, cancel := context.WithTimeout(ctx, f.timeout)

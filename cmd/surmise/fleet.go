@@ -47,17 +47,13 @@ type fleetFlags struct {
 }
 
 func runFleet(ctx context.Context, e *env, args []string) error {
-	if len(args) == 0 {
-		return usageError("want a verb: put, ls, get or rm")
-	}
-	verb, args := args[0], args[1:]
 	flags := newFlags(e, "fleet", fleetSynopsis)
 	var f fleetFlags
 	flags.StringVar(&f.fleet, "fleet", "", "the fleet's `NAME` (required)")
 	flags.StringVar(&f.nats, "nats", "nats://127.0.0.1:4222", "NATS server `URL`s, comma-separated")
 	flags.StringVar(&f.creds, "creds", "", "NATS user credentials `FILE` (JWT and seed)")
 	flags.StringVar(&f.tlsCA, "tls-ca", "", "PEM `FILE` of the CAs that sign the NATS server's certificate")
-	flags.DurationVar(&f.timeout, "timeout", 10*time.Second, "how long to wait for the server")
+	flags.DurationVar(&f.timeout, "timeout", 10*time.Second, "how long to wait for the server (a `DURATION` such as 10s)")
 	flags.BoolVar(&f.json, "json", false, "ls, get --history: print JSON")
 	flags.BoolVar(&f.gains, "gains", false, "get: print the gains file instead of the plant file")
 	flags.BoolVar(&f.history, "history", false, "get: print the revisions of the plant and gains files")
@@ -65,6 +61,11 @@ func runFleet(ctx context.Context, e *env, args []string) error {
 	if err != nil {
 		return err
 	}
+	if len(pos) == 0 {
+		return usageError("want a verb: put, ls, get or rm")
+	}
+	verb := pos[0]
+	pos = pos[1:]
 	if f.fleet == "" {
 		return usageError("--fleet NAME is required")
 	}
@@ -93,16 +94,9 @@ func runFleet(ctx context.Context, e *env, args []string) error {
 		}
 	}
 
-	opts := []nats.Option{nats.Name("surmise fleet"), nats.Timeout(f.timeout), nats.NoReconnect()}
-	if f.creds != "" {
-		opts = append(opts, nats.UserCredentials(f.creds))
-	}
-	if f.tlsCA != "" {
-		opts = append(opts, nats.RootCAs(f.tlsCA))
-	}
-	nc, err := nats.Connect(f.nats, opts...)
+	nc, err := dialClient("surmise fleet", f.nats, f.creds, f.tlsCA, f.timeout)
 	if err != nil {
-		return &exitError{code: 1, msg: fmt.Sprintf("cannot reach the bus at %s: %v", f.nats, err)}
+		return err
 	}
 	defer nc.Close()
 	ctx, cancel := context.WithTimeout(ctx, f.timeout)
@@ -240,4 +234,21 @@ func fleetList(ctx context.Context, e *env, store *daemon.FleetStore, asJSON boo
 		fmt.Fprintf(w, "%s\t%d\t%d\t%s\t%s\t%s\n", en.Estimator, en.PlantRevision, en.GainsRevision, owner, status, cp)
 	}
 	return w.Flush()
+}
+
+// dialClient connects a short-lived client (ctl, fleet) to url, without
+// reconnecting; a failure is an exit status 1 that says where it tried.
+func dialClient(name, url, creds, tlsCA string, timeout time.Duration) (*nats.Conn, error) {
+	opts := []nats.Option{nats.Name(name), nats.Timeout(timeout), nats.NoReconnect()}
+	if creds != "" {
+		opts = append(opts, nats.UserCredentials(creds))
+	}
+	if tlsCA != "" {
+		opts = append(opts, nats.RootCAs(tlsCA))
+	}
+	nc, err := nats.Connect(url, opts...)
+	if err != nil {
+		return nil, &exitError{code: 1, msg: fmt.Sprintf("cannot reach the bus at %s: %v", url, err)}
+	}
+	return nc, nil
 }
