@@ -461,6 +461,11 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 	for _, e := range d.estimators {
 		signals += len(e.signals)
 	}
+	if d.opts.Fleet != nil {
+		// Its estimators come later, as many as the fleet has: the
+		// largest channels (a few hundred KiB).
+		signals = shardMaxSlots
+	}
 	d.router = newSampleRouter(signals)
 	d.router.start(g)
 	for _, e := range d.estimators {
