@@ -10,6 +10,8 @@ import (
 	"net"
 	"os"
 	"strconv"
+	"strings"
+	"sync"
 	"sync/atomic"
 	"time"
 
@@ -50,6 +52,48 @@ type EmbeddedOptions struct {
 
 	// Log receives one line with the server's URL; nil means no logging.
 	Log *slog.Logger
+
+	// LocalPassword, when set, locks the server: clients log in as
+	// LocalUser with this password and may do anything, while clients
+	// without credentials get the Anonymous permissions (nil: none at
+	// all). Empty leaves the server open to every local client.
+	LocalPassword string
+	Anonymous     *server.Permissions
+}
+
+// startLog keeps the embedded server's warnings and errors, so that a server
+// that does not come up says why (JetStream's store unwritable, say).
+type startLog struct {
+	mu    sync.Mutex
+	lines []string
+	fatal bool
+}
+
+func (l *startLog) add(level, format string, v []any) {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	if len(l.lines) < 20 {
+		l.lines = append(l.lines, level+": "+fmt.Sprintf(format, v...))
+	}
+}
+
+func (l *startLog) Noticef(string, ...any)         {}
+func (l *startLog) Debugf(string, ...any)          {}
+func (l *startLog) Tracef(string, ...any)          {}
+func (l *startLog) Warnf(format string, v ...any)  { l.add("warning", format, v) }
+func (l *startLog) Errorf(format string, v ...any) { l.add("error", format, v) }
+func (l *startLog) Fatalf(format string, v ...any) {
+	l.add("fatal", format, v)
+	l.mu.Lock()
+	l.fatal = true
+	l.mu.Unlock()
+}
+
+// failed returns what the server said, and whether it gave up.
+func (l *startLog) failed() (string, bool) {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return strings.Join(l.lines, "; "), l.fatal
 }
 
 // StartEmbedded starts an in-process NATS server with JetStream on a
@@ -69,9 +113,20 @@ func StartEmbedded(opts EmbeddedOptions) (*server.Server, error) {
 		port = DefaultEmbeddedPort
 		if ln, err := net.Listen("tcp", net.JoinHostPort("127.0.0.1", strconv.Itoa(port))); err != nil {
 			port = -1 // taken: let the server pick one
+			if opts.Log != nil {
+				opts.Log.Warn("embedded NATS server: the default port is taken; listening on a free one (local clients find it in the local access files)", "port", DefaultEmbeddedPort, "error", err)
+			}
 		} else {
 			ln.Close()
 		}
+	} else if port > 0 {
+		// A port asked for by number is that port or an error, said now
+		// rather than after a wait.
+		ln, err := net.Listen("tcp", net.JoinHostPort("127.0.0.1", strconv.Itoa(port)))
+		if err != nil {
+			return nil, fmt.Errorf("embedded NATS server: port %d on 127.0.0.1 is not free (another daemon or NATS server?); choose another port, or -1 for any free one: %w", port, err)
+		}
+		ln.Close()
 	}
 	name := opts.ServerName
 	if name == "" {
@@ -88,7 +143,7 @@ func StartEmbedded(opts EmbeddedOptions) (*server.Server, error) {
 	if timeout == 0 {
 		timeout = 5 * time.Second
 	}
-	ns, err := server.NewServer(&server.Options{
+	sopts := &server.Options{
 		ServerName:         name,
 		Host:               "127.0.0.1",
 		Port:               port,
@@ -98,15 +153,41 @@ func StartEmbedded(opts EmbeddedOptions) (*server.Server, error) {
 		StoreDir:           opts.StoreDir,
 		JetStreamMaxMemory: maxMem,
 		JetStreamMaxStore:  maxStore,
-	})
+	}
+	if opts.LocalPassword != "" {
+		anon := opts.Anonymous
+		if anon == nil {
+			anon = &server.Permissions{Publish: &server.SubjectPermission{Deny: []string{">"}}, Subscribe: &server.SubjectPermission{Deny: []string{">"}}}
+		}
+		sopts.Users = []*server.User{
+			{Username: LocalUser, Password: opts.LocalPassword},
+			// The user of clients without credentials (NoAuthUser); its
+			// password is never used, and is random so nobody can log in
+			// with it.
+			{Username: anonymousUser, Password: opts.LocalPassword + "-anonymous", Permissions: anon},
+		}
+		sopts.NoAuthUser = anonymousUser
+	}
+	ns, err := server.NewServer(sopts)
 	if err != nil {
 		return nil, fmt.Errorf("embedded NATS server: %w", err)
 	}
+	said := &startLog{}
+	ns.SetLogger(said, false, false)
 	ns.Start()
-	if !ns.ReadyForConnections(timeout) {
-		ns.Shutdown()
-		ns.WaitForShutdown()
-		return nil, fmt.Errorf("embedded NATS server on 127.0.0.1 port %d: not ready after %v", port, timeout)
+	// Ready, or given up (a fatal start-up error: the server then never
+	// accepts clients), or out of time — whichever comes first.
+	deadline := time.Now().Add(timeout)
+	for !ns.ReadyForConnections(50 * time.Millisecond) {
+		msg, fatal := said.failed()
+		if fatal || time.Now().After(deadline) {
+			ns.Shutdown()
+			ns.WaitForShutdown()
+			if msg == "" {
+				msg = fmt.Sprintf("not ready after %v", timeout)
+			}
+			return nil, fmt.Errorf("embedded NATS server on 127.0.0.1 port %d, store %s: %s", port, opts.StoreDir, msg)
+		}
 	}
 	if opts.Log != nil {
 		opts.Log.Info("embedded NATS server started", "url", ns.ClientURL(), "store", opts.StoreDir)
@@ -128,6 +209,12 @@ type BusOptions struct {
 	CredsFile string
 	// NKeyFile is a file holding a user NKey seed.
 	NKeyFile string
+	// UserFile is a file of one line "USER:PASSWORD" (mode 0600), such as
+	// the nats.user a daemon writes for local clients (see LocalAccess).
+	UserFile string
+	// User and Password log in with a password given directly (the
+	// daemon's own connection to its embedded server).
+	User, Password string
 
 	// TLSCA is a PEM file of the certificate authorities that sign the
 	// server's certificate; TLSCert and TLSKey are the client certificate
@@ -153,7 +240,28 @@ type Bus struct {
 	closed  chan struct{} // closed by the closed handler
 	closing atomic.Bool   // set by Close: the disconnect that follows is ours
 	log     *slog.Logger
+
+	warnLimit logLimiter // bus errors (a slow consumer repeats them)
+	dropMu    sync.Mutex
+	dropped   map[*nats.Subscription]int // drops counted so far, per subscription
+
+	// stalled is set while a connected server does not answer (see probe).
+	stalled   atomic.Bool
+	probeDone chan struct{}
 }
+
+// A stalled server — a process stopped or hung, a link that silently
+// drops — keeps the TCP connection open, and the client would queue
+// publishes into it for as long as its pings allow. The bus probes the
+// server every probeEvery with a PING; when no PONG came for stallAfter it
+// is stalled: Up turns false (estimates are withheld, /readyz fails,
+// surmise_bus_connected is 0) until the server answers again. The client's
+// own pings (every second, two outstanding) then drop the connection and
+// reconnect, about three seconds after the server's last answer.
+const (
+	probeEvery = 250 * time.Millisecond
+	stallAfter = time.Second
+)
 
 // Connect connects to the server of opts. It returns at once even when the
 // server cannot be reached yet: the connection keeps retrying, forever, with
@@ -204,7 +312,7 @@ func Connect(opts BusOptions, m *Metrics, log *slog.Logger) (*Bus, error) {
 		// client's default of minutes, and a write to a stuck socket gives
 		// up after a second instead of a minute, so a tick's publish never
 		// waits long on a dead link.
-		nats.PingInterval(5 * time.Second),
+		nats.PingInterval(time.Second),
 		nats.MaxPingsOutstanding(2),
 		nats.FlusherTimeout(time.Second),
 		nats.ConnectHandler(func(nc *nats.Conn) {
@@ -234,8 +342,17 @@ func Connect(opts BusOptions, m *Metrics, log *slog.Logger) (*Bus, error) {
 			subject := ""
 			if sub != nil {
 				subject = sub.Subject
+				if errors.Is(err, nats.ErrSlowConsumer) && m != nil {
+					m.BusDropped(DropPendingLimit, b.newlyDropped(sub))
+				}
 			}
-			log.Warn("bus error", "subject", subject, "error", err)
+			if ok, held := b.warnLimit.allow(time.Now().UnixNano(), int64(busWarnEvery), ReasonUnknown); ok {
+				args := []any{"subject", subject, "error", err}
+				if held > 0 {
+					args = append(args, "unlogged_since_last", held)
+				}
+				log.Warn("bus error", args...)
+			}
 		}),
 	}
 	auth, err := authOptions(opts)
@@ -251,23 +368,46 @@ func Connect(opts BusOptions, m *Metrics, log *slog.Logger) (*Bus, error) {
 	}
 	nc, err := nats.Connect(url, nopts...)
 	if err != nil {
-		return nil, fmt.Errorf("bus: connecting to %s: %w", url, err)
+		return nil, fmt.Errorf("bus: connecting to %s: %w", RedactURL(url), err)
 	}
 	b.nc = nc
+	b.probeDone = make(chan struct{})
+	go b.probe(m)
 	if nc.IsConnected() {
 		setConnected(true)
 	} else {
-		log.Warn("bus not reachable yet, retrying in the background", "url", url)
+		log.Warn("bus not reachable yet, retrying in the background", "url", RedactURL(url))
 	}
 	return b, nil
 }
+
+// ClientOptions checks the credential and TLS files of opts and returns the
+// matching client options, for a program that makes its own connection
+// (surmise ctl, record, simulate) with the same settings as the daemon's.
+func ClientOptions(opts BusOptions) ([]nats.Option, error) { return authOptions(opts) }
 
 // authOptions checks the credential and TLS files of opts and returns the
 // matching client options.
 func authOptions(opts BusOptions) ([]nats.Option, error) {
 	var out []nats.Option
-	if opts.CredsFile != "" && opts.NKeyFile != "" {
-		return nil, errors.New("bus: both a credentials file and an NKey seed file given; use one")
+	n := 0
+	for _, set := range []bool{opts.CredsFile != "", opts.NKeyFile != "", opts.UserFile != "", opts.User != ""} {
+		if set {
+			n++
+		}
+	}
+	if n > 1 {
+		return nil, errors.New("bus: more than one way to log in given (credentials file, NKey seed file, user file, user); use one")
+	}
+	if opts.UserFile != "" {
+		u, p, err := ReadUserFile(opts.UserFile)
+		if err != nil {
+			return nil, fmt.Errorf("bus: %w", err)
+		}
+		out = append(out, nats.UserInfo(u, p))
+	}
+	if opts.User != "" {
+		out = append(out, nats.UserInfo(opts.User, opts.Password))
 	}
 	if opts.CredsFile != "" {
 		if _, err := os.ReadFile(opts.CredsFile); err != nil {
@@ -304,8 +444,72 @@ func authOptions(opts BusOptions) ([]nats.Option, error) {
 	return out, nil
 }
 
+// busWarnEvery is the shortest interval between two logged bus errors; the
+// ones in between are counted in the next line.
+const busWarnEvery = 10 * time.Second
+
+// newlyDropped returns how many messages sub dropped since the last call.
+func (b *Bus) newlyDropped(sub *nats.Subscription) int {
+	total, err := sub.Dropped()
+	if err != nil {
+		return 0
+	}
+	b.dropMu.Lock()
+	defer b.dropMu.Unlock()
+	if b.dropped == nil {
+		b.dropped = map[*nats.Subscription]int{}
+	}
+	n := total - b.dropped[sub]
+	b.dropped[sub] = total
+	return max(n, 0)
+}
+
 // Conn returns the NATS connection.
 func (b *Bus) Conn() *nats.Conn { return b.nc }
+
+// Up reports whether the bus may be published on now: connected, and the
+// server answered within stallAfter.
+func (b *Bus) Up() bool { return b.nc.IsConnected() && !b.stalled.Load() }
+
+// probe watches a connected server's answers until the connection closes;
+// see stallAfter.
+func (b *Bus) probe(m *Metrics) {
+	defer close(b.probeDone)
+	t := time.NewTicker(probeEvery)
+	defer t.Stop()
+	last := time.Now()
+	for {
+		select {
+		case <-b.closed:
+			return
+		case <-t.C:
+		}
+		if !b.nc.IsConnected() {
+			last = time.Now() // the disconnect handlers report this
+			b.stalled.Store(false)
+			continue
+		}
+		err := b.nc.FlushTimeout(stallAfter)
+		now := time.Now()
+		if err == nil {
+			last = now
+			if b.stalled.Swap(false) {
+				b.log.Info("bus: the server answers again")
+				if m != nil {
+					m.SetBusConnected(b.nc.IsConnected())
+				}
+			}
+			continue
+		}
+		if now.Sub(last) >= stallAfter && b.nc.IsConnected() && !b.closing.Load() && !b.stalled.Swap(true) {
+			b.log.Warn("bus: the server does not answer; estimates withheld until it does", "silent_for", now.Sub(last).Round(time.Millisecond), "error", err)
+			if m != nil {
+				m.SetBusConnected(false)
+				m.BusDisconnected()
+			}
+		}
+	}
+}
 
 // Close drains the connection — subscriptions stop taking messages, those
 // already received are handled, pending publishes are flushed — and waits
@@ -322,9 +526,12 @@ func (b *Bus) Close(timeout time.Duration) error {
 	defer t.Stop()
 	select {
 	case <-b.closed:
+		<-b.probeDone
 		return nil
 	case <-t.C:
 		b.nc.Close()
+		<-b.closed
+		<-b.probeDone
 		return fmt.Errorf("bus: not closed %v after draining began", timeout)
 	}
 }

@@ -22,9 +22,14 @@ import (
 	"surmise/estimator"
 )
 
-// drainTimeout bounds the NATS drain at shutdown: subscriptions first, then
-// the pending publishes.
+// drainTimeout bounds the confirmation of the subscriptions at start-up and
+// the drain of a recorder.
 const drainTimeout = 5 * time.Second
+
+// stopDrainTimeout bounds the NATS drain at a stop (subscriptions, then the
+// pending publishes): a stop must be quick whatever the server does, and
+// what could not drain is logged, not failed.
+const stopDrainTimeout = 500 * time.Millisecond
 
 // PlantSpec is one estimator for a Daemon to run: a validated plant file and
 // its gains file, loaded for that plant (config.LoadGains). The daemon runs
@@ -32,6 +37,10 @@ const drainTimeout = 5 * time.Second
 type PlantSpec struct {
 	Plant *config.Plant
 	Gains *config.GainsFile
+	// GainsBytes, when not nil, are the bytes Gains was parsed from, for
+	// gains that are not in the file the plant names (built into the
+	// program, say): their SHA-256 is what a status reports as in effect.
+	GainsBytes []byte
 }
 
 // EstimateSubject returns the subject the estimates of plant are published
@@ -123,6 +132,21 @@ type Options struct {
 	// the control service still reload).
 	ReloadDebounce time.Duration
 
+	// Standby makes the daemon wait for an estimator that another daemon
+	// runs on the same bus, instead of refusing to start: it subscribes and
+	// ticks (so its estimate is current) but publishes nothing, and its
+	// /readyz fails, until the other daemon's lease on the estimator lapses
+	// or is released; then it takes over.
+	Standby bool
+
+	// LeaseBucket is the JetStream key-value bucket of the estimators'
+	// leases; empty means DefaultLeaseBucket. LeaseTTL is how long a lease
+	// outlives its last renewal (a dead daemon's estimators are taken over
+	// after about that long); zero means lease.DefaultTTL, and an existing
+	// bucket keeps its own.
+	LeaseBucket string
+	LeaseTTL    time.Duration
+
 	// Started, when not nil, is called once by Run when the daemon has
 	// started — server up, listeners bound, subscriptions made, ticks
 	// scheduled — with the addresses it uses.
@@ -141,6 +165,10 @@ type Endpoints struct {
 	// StateDir is the directory of the embedded server's store (under
 	// StateDir/nats); empty when the daemon runs no server.
 	StateDir string
+	// LocalAccess is the directory of the local access files (nats.url,
+	// nats.user) of the embedded server, where local clients find it;
+	// empty when the daemon runs no server or could not write them.
+	LocalAccess string
 }
 
 // setDefaults fills in the zero fields of o that have a default.
@@ -267,12 +295,14 @@ type Daemon struct {
 
 	ran atomic.Bool
 
-	comm *commissioning // reloads, audit, control service (reload.go)
-	page *Page          // the live page at / (page.go)
+	comm   *commissioning // reloads, audit, control service (reload.go)
+	leases leasing        // the one-writer leases (leases.go)
+	page   *Page          // the live page at / (page.go)
 
 	// Set by Run.
 	ns          *server.Server // the embedded server, when it is ours
 	tempState   string         // a temporary state directory to remove
+	localDirs   []string       // local access files to remove (local.go)
 	bus         *Bus
 	fleet       *fleetRunner  // in a fleet (fleet_run.go)
 	router      *sampleRouter // the samples' dispatch path (dispatch.go)
@@ -327,6 +357,9 @@ func New(opts Options) (*Daemon, error) {
 	for i, p := range opts.Plants {
 		d.estimators = append(d.estimators, newEstimator(d, p, prepared[i]))
 		longest = max(longest, periodOf(p.Plant))
+	}
+	if opts.Fleet != nil {
+		d.fleet = newFleetRunner(d)
 	}
 	if err := d.newCommissioning(); err != nil {
 		return nil, err
@@ -416,7 +449,7 @@ func (d *Daemon) Run(ctx context.Context) (err error) {
 	if err := d.opts.Notify(sd.SdNotifyReady); err != nil {
 		d.log.Warn("sd_notify READY=1 failed", "error", err)
 	}
-	d.log.Info("daemon started", "bus", ep.BusURL, "embedded", ep.Embedded, "http", ep.HTTPAddr.String(), "estimators", len(d.estimators))
+	d.log.Info("daemon started", "bus", RedactURL(ep.BusURL), "embedded", ep.Embedded, "http", ep.HTTPAddr.String(), "estimators", len(d.estimators))
 	if d.opts.Started != nil {
 		d.opts.Started(ep)
 	}
@@ -428,6 +461,12 @@ func (d *Daemon) Run(ctx context.Context) (err error) {
 func (d *Daemon) start(g *Group) (Endpoints, error) {
 	d.started.Store(d.now())
 	var ep Endpoints
+	// The HTTP address first: one in use stops the start before anything
+	// else is started.
+	if err := d.http.Listen(); err != nil {
+		return ep, err
+	}
+	ep.HTTPAddr = d.http.Addr()
 	bo := d.opts.Bus
 	switch {
 	case bo.Embedded != nil:
@@ -444,12 +483,18 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 			d.tempState, dir = tmp, tmp
 			d.log.Info("no state directory given: the embedded server's store is temporary", "dir", tmp)
 		}
-		ns, err := StartEmbedded(EmbeddedOptions{Port: d.opts.EmbeddedPort, StoreDir: filepath.Join(dir, "nats"), Log: d.log})
+		pw, err := newLocalPassword()
 		if err != nil {
 			return ep, err
 		}
-		d.ns, bo.Embedded = ns, ns
+		ns, err := StartEmbedded(EmbeddedOptions{Port: d.opts.EmbeddedPort, StoreDir: filepath.Join(dir, "nats"), Log: d.log,
+			LocalPassword: pw, Anonymous: anonymousPermissions(d.opts.Plants)})
+		if err != nil {
+			return ep, err
+		}
+		d.ns, bo.Embedded, bo.User, bo.Password = ns, ns, LocalUser, pw
 		ep.BusURL, ep.Embedded, ep.StateDir = ns.ClientURL(), true, dir
+		ep.LocalAccess = d.writeLocalAccess(LocalAccess{URL: ns.ClientURL(), User: LocalUser, Password: pw})
 	}
 
 	bus, err := Connect(bo, d.metrics, d.log)
@@ -457,6 +502,13 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 		return ep, err
 	}
 	d.bus = bus
+	// A fleet daemon's estimators have the fleet's leases (fleet_run.go);
+	// the leases of plant files are for the others.
+	if d.fleet == nil {
+		if err := d.startLeases(g, bus.Conn()); err != nil {
+			return ep, err
+		}
+	}
 	signals := 0
 	for _, e := range d.estimators {
 		signals += len(e.signals)
@@ -485,17 +537,11 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 		}
 	}
 
-	// The fleet is set up before anything else may look at d.fleet (the
-	// HTTP server's health checks); its estimators start ticking once the
-	// scheduler runs.
-	if d.opts.Fleet != nil {
+	// The fleet's estimators start ticking once the scheduler runs.
+	if d.fleet != nil {
 		d.startFleet(g)
 	}
 
-	if err := d.http.Listen(); err != nil {
-		return ep, err
-	}
-	ep.HTTPAddr = d.http.Addr()
 	g.Go("http", d.http.Serve)
 
 	// The scheduler has a context of its own: shutdown stops the ticks
@@ -536,20 +582,25 @@ func (d *Daemon) shutdown(g *Group) error {
 		d.schedCancel()
 		<-d.schedDone
 	}
+	leasesReleased := d.releaseLeases()
 	d.stopCommissioning()
 	if d.router != nil {
 		d.router.close()
 	}
 	if d.bus != nil {
-		if err := d.bus.Close(drainTimeout); err != nil {
-			errs = append(errs, err)
+		if err := d.bus.Close(stopDrainTimeout); err != nil {
+			d.log.Warn("bus: closed without draining (pending samples and estimates dropped)", "error", err)
 		}
 	}
+	leasesReleased()
 	// The HTTP server stops with the group's context.
 	if err := g.Stop(); err != nil {
 		errs = append(errs, err)
 	}
 	if d.ns != nil {
+		for _, dir := range d.localDirs {
+			removeLocalAccess(dir)
+		}
 		d.ns.Shutdown()
 		d.ns.WaitForShutdown()
 	}
@@ -604,8 +655,8 @@ func (d *Daemon) watchdog(ctx context.Context, every time.Duration) {
 	}
 }
 
-// busConnected reports whether the bus is connected now.
-func (d *Daemon) busConnected() bool { return d.bus != nil && d.bus.Conn().IsConnected() }
+// busConnected reports whether the bus is connected now, and not stalled.
+func (d *Daemon) busConnected() bool { return d.bus != nil && d.bus.Up() }
 
 // minStall is the shortest time without a tick that counts as a stall, so
 // that a fast estimator is not declared dead over a garbage-collection pause
@@ -711,12 +762,21 @@ func (d *Daemon) missing() []string {
 	case d.fleet != nil && !d.fleet.joined.Load():
 		m = append(m, "fleet "+d.opts.Fleet.Name+": its buckets are not available yet")
 	}
+	if w := d.leases.waiting.Load(); w != nil {
+		m = append(m, *w)
+	}
 	for _, e := range d.all() {
+		if e.fleet == nil && d.scheduled.Load() != 0 && d.leases.waiting.Load() == nil && !e.mayPublish() {
+			m = append(m, "estimator "+e.name+": its lease is not held")
+		}
 		if !e.gainsOK.Load() {
 			m = append(m, "estimator "+e.name+": gains not valid")
 		}
 		if e.lastTick.Load() == 0 {
 			m = append(m, "estimator "+e.name+": no tick yet")
+		}
+		if !e.sampled.Load() {
+			m = append(m, "estimator "+e.name+": no sample received yet on its wired subjects (every tick so far ran without inputs or measurements)")
 		}
 	}
 	return m

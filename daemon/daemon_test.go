@@ -156,6 +156,7 @@ func startDaemon(t testing.TB, opts daemon.Options) *running {
 	select {
 	case r.ep = <-started:
 	case err := <-done:
+		once.Do(func() {}) // Run has returned: nothing to stop
 		t.Fatalf("Run returned before starting: %v", err)
 	case <-time.After(20 * time.Second):
 		t.Fatal("the daemon did not start in 20 s")
@@ -508,4 +509,43 @@ func (l *syncLog) String() string {
 	l.mu.Lock()
 	defer l.mu.Unlock()
 	return l.b.String()
+}
+
+// TestNotReadyWithoutSamples: a daemon whose estimators have never had a
+// sample ticks (every tick stale-input) but is not ready, and says why;
+// the first accepted sample makes it ready.
+func TestNotReadyWithoutSamples(t *testing.T) {
+	spec := demoPlant(t, 20*time.Millisecond)
+	r := startDaemon(t, daemon.Options{Plants: []daemon.PlantSpec{spec}, EmbeddedPort: -1})
+	readyz := "http://" + r.ep.HTTPAddr.String() + "/readyz"
+	labels := map[string]string{"estimator": spec.Plant.Name}
+	checkFor(t, 10*time.Second, 10*time.Millisecond, func() error {
+		if v, _ := gathered(t, r.reg, "surmise_ticks_total", map[string]string{"estimator": spec.Plant.Name, "status": "stale-input"}); v < 3 {
+			return fmt.Errorf("%v stale-input ticks, want 3", v)
+		}
+		return nil
+	})
+	if code, body := httpGet(t, readyz); code != 503 || !strings.Contains(body, "no sample received yet") {
+		t.Errorf("/readyz with no sample ever: %d %q, want 503 saying no sample was received", code, body)
+	}
+	if v, _ := gathered(t, r.reg, "surmise_ready", labels); v != 0 {
+		t.Errorf("surmise_ready = %v with no sample ever, want 0", v)
+	}
+	nc, err := nats.Connect(r.ep.BusURL)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer nc.Close()
+	if err := nc.Publish(spec.Plant.Outputs[0].Subject, []byte("61.5")); err != nil {
+		t.Fatal(err)
+	}
+	checkFor(t, 10*time.Second, 10*time.Millisecond, func() error {
+		if code, body := httpGet(t, readyz); code != 200 {
+			return fmt.Errorf("/readyz after a sample: %d %q", code, body)
+		}
+		if v, _ := gathered(t, r.reg, "surmise_ready", labels); v != 1 {
+			return fmt.Errorf("surmise_ready = %v after a sample", v)
+		}
+		return nil
+	})
 }

@@ -295,6 +295,13 @@ func (e *Engine) Offer(signal int, value float64, sampleTime, recvTime time.Time
 	if sampleTime.IsZero() || sampleTime.After(recvTime) {
 		sampleTime = recvTime
 	}
+	if signal < e.m && w.maxAge > 0 && recvTime.Sub(sampleTime) > w.maxAge {
+		// An input too old on arrival to be used (it would make every
+		// tick stale-input); an output that old is counted stale at its
+		// tick.
+		e.countRejected(signal, ReasonStale)
+		return ReasonStale, false
+	}
 	e.mu.Lock()
 	if signal >= e.m && e.ticked && !sampleTime.After(e.lastTick) {
 		e.mu.Unlock()

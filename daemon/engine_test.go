@@ -259,6 +259,13 @@ func TestEngineMeasurements(t *testing.T) {
 		wantY: [][2]float64{{nan, nan}, {nan, 20.8}, {nan, nan}},
 		stale: [2]int{1, 0},
 	}, {
+		// An input too old on arrival is refused with its reason, and the
+		// input stays unheard (held at the operating point).
+		name:   "an input older than max_age on arrival is refused as stale",
+		maxAge: 250 * time.Millisecond,
+		offers: [][]off{nil, {{engOffer{0, 0.5, 0.5, 0.9}, ReasonStale}}},
+		wantY:  [][2]float64{{nan, nan}, {nan, nan}, {nan, nan}},
+	}, {
 		name:   "clock skew: a time after the receive time is the receive time",
 		maxAge: 250 * time.Millisecond,
 		// sender clock one hour ahead; received 0.9 s, so 0.1 s old at tick 1

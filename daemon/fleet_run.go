@@ -104,11 +104,9 @@ type fleetLease struct {
 	latest  atomic.Pointer[Checkpoint]
 }
 
-// startFleet starts the fleet's goroutines. It does not wait for the
-// buckets: the fleet goroutine opens them, retrying every second while the
-// servers cannot serve them (a node restarting, JetStream electing its
-// leaders), so that a daemon may start before its cluster is whole.
-func (d *Daemon) startFleet(g *Group) {
+// newFleetRunner makes the daemon's fleet side (New calls it, before any
+// goroutine may look at d.fleet); startFleet starts it.
+func newFleetRunner(d *Daemon) *fleetRunner {
 	fo := d.opts.Fleet
 	f := &fleetRunner{
 		d: d, self: d.opts.Instance,
@@ -122,7 +120,15 @@ func (d *Daemon) startFleet(g *Group) {
 	if f.every == 0 {
 		f.every = DefaultCheckpointEvery
 	}
-	d.fleet = f
+	return f
+}
+
+// startFleet starts the fleet's goroutines. It does not wait for the
+// buckets: the fleet goroutine opens them, retrying every second while the
+// servers cannot serve them (a node restarting, JetStream electing its
+// leaders), so that a daemon may start before its cluster is whole.
+func (d *Daemon) startFleet(g *Group) {
+	f := d.fleet
 	runCtx, cancel := context.WithCancel(context.Background())
 	f.cancel, f.done = cancel, make(chan struct{})
 	g.Go("fleet", func(ctx context.Context) error {
@@ -483,6 +489,9 @@ func (f *fleetRunner) runningList() []*Estimator {
 // that each hands over a last checkpoint), and releases every lease, so
 // that the other members take over at once.
 func (f *fleetRunner) stopAll() {
+	if f.done == nil {
+		return // never started
+	}
 	f.cancel()
 	<-f.done
 	ctx, cancel := context.WithTimeout(context.Background(), drainTimeout)

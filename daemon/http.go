@@ -66,6 +66,7 @@ type HTTPServer struct {
 	created time.Time
 	mux     *http.ServeMux
 	srv     *http.Server
+	log     *slog.Logger
 
 	mu sync.Mutex
 	ln net.Listener
@@ -96,7 +97,7 @@ func NewHTTPServer(opts HTTPOptions) (*HTTPServer, error) {
 	if log == nil {
 		log = slog.New(slog.NewTextHandler(io.Discard, nil))
 	}
-	h := &HTTPServer{opts: opts, limit: limit, created: time.Now(), mux: http.NewServeMux()}
+	h := &HTTPServer{opts: opts, limit: limit, created: time.Now(), mux: http.NewServeMux(), log: log}
 	h.mux.Handle("GET /metrics", promhttp.HandlerFor(opts.Gatherer, promhttp.HandlerOpts{
 		ErrorLog:      slog.NewLogLogger(log.Handler(), slog.LevelError),
 		ErrorHandling: promhttp.ContinueOnError,
@@ -150,9 +151,15 @@ func (h *HTTPServer) Addr() net.Addr {
 	return h.ln.Addr()
 }
 
+// httpShutdownGrace is how long requests in flight get to finish at a stop;
+// what is still open then (a live page's event stream, a slow scrape) is
+// closed, and logged, so that a requested stop is quick.
+const httpShutdownGrace = 500 * time.Millisecond
+
 // Serve serves on the address bound by Listen until ctx is done, then
-// shuts down gracefully — new connections are refused, requests in flight
-// get up to 5 s to finish — and returns nil. It returns an error if serving
+// shuts down — new connections are refused, requests in flight get
+// httpShutdownGrace to finish, the rest are closed and logged — and returns
+// nil. It returns an error if serving
 // fails or Listen was not called. Its shape fits [Group.Go].
 func (h *HTTPServer) Serve(ctx context.Context) error {
 	h.mu.Lock()
@@ -171,13 +178,13 @@ func (h *HTTPServer) Serve(ctx context.Context) error {
 		return fmt.Errorf("http server: %w", err)
 	case <-ctx.Done():
 	}
-	sctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
+	sctx, cancel := context.WithTimeout(context.Background(), httpShutdownGrace)
 	defer cancel()
-	err := h.srv.Shutdown(sctx)
-	<-errc
-	if err != nil {
-		return fmt.Errorf("http server: shutting down: %w", err)
+	if err := h.srv.Shutdown(sctx); err != nil {
+		h.log.Info("http server: closing the connections still open at the stop (live page streams, slow requests)", "after", httpShutdownGrace, "reason", err)
+		h.srv.Close()
 	}
+	<-errc
 	return nil
 }
 

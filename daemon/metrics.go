@@ -71,6 +71,7 @@ type Metrics struct {
 	sampleToEst    *prometheus.HistogramVec
 	ready          *prometheus.GaugeVec
 	busConnected   prometheus.Gauge
+	busDropped     *prometheus.CounterVec
 	busDisconnects prometheus.Counter
 
 	// level says which series an estimator binds (metrics_level.go).
@@ -139,7 +140,7 @@ func NewMetricsLevel(reg prometheus.Registerer, level MetricsLevel) *Metrics {
 		reloads: counter("surmise_gain_reloads_total",
 			"Gain reloads, by result.", labelEstimator, labelResult),
 		lastReload: gauge("surmise_gain_last_reload_success",
-			"1 if the latest gain reload succeeded, 0 if it was refused.", labelEstimator),
+			"1 if the latest gain load succeeded (the load at start-up counts), 0 if it was refused.", labelEstimator),
 		sampleToEst: histogram("surmise_sample_to_estimate_seconds",
 			"Time from the receipt of a measurement to the publication of the estimate that used it.", labelEstimator),
 		ready: gauge("surmise_ready",
@@ -148,6 +149,8 @@ func NewMetricsLevel(reg prometheus.Registerer, level MetricsLevel) *Metrics {
 			Help: "1 while connected to the NATS server."}),
 		busDisconnects: prometheus.NewCounter(prometheus.CounterOpts{Name: "surmise_bus_disconnects_total",
 			Help: "Disconnections from the NATS server."}),
+		busDropped: prometheus.NewCounterVec(prometheus.CounterOpts{Name: "surmise_bus_dropped_total",
+			Help: "Messages dropped on the bus, by reason: pending-limit (a subscription's backlog was full), oversize (a publish larger than the server allows)."}, []string{labelReason}),
 	}
 	for _, v := range []*prometheus.CounterVec{m.ticks, m.overruns, m.nisOutOfBand, m.outliers, m.received, m.rejected, m.reloads} {
 		m.vecs = append(m.vecs, v.MetricVec)
@@ -162,7 +165,10 @@ func NewMetricsLevel(reg prometheus.Registerer, level MetricsLevel) *Metrics {
 	reg.MustRegister(m.ticks, m.overruns, m.compute, m.lateness, m.status, m.innovation, m.innovationRMS,
 		m.nis, m.nisMean, m.nisLower, m.nisUpper, m.nisOutOfBand, m.outliers, m.measurementAge, m.received,
 		m.rejected, m.state, m.stateStddev, m.gainsInfo, m.reloads, m.lastReload, m.sampleToEst, m.ready,
-		m.busConnected, m.busDisconnects)
+		m.busConnected, m.busDisconnects, m.busDropped)
+	for _, r := range []string{DropPendingLimit, DropOversize} {
+		m.busDropped.WithLabelValues(r)
+	}
 	return m
 }
 
@@ -184,6 +190,17 @@ func RegisterRuntime(reg prometheus.Registerer) error {
 
 // SetBusConnected sets surmise_bus_connected.
 func (m *Metrics) SetBusConnected(connected bool) { m.busConnected.Set(b2f(connected)) }
+
+// Reasons of surmise_bus_dropped_total.
+const (
+	DropPendingLimit = "pending-limit"
+	DropOversize     = "oversize"
+)
+
+// BusDropped counts n messages dropped on the bus for reason.
+func (m *Metrics) BusDropped(reason string, n int) {
+	m.busDropped.WithLabelValues(reason).Add(float64(n))
+}
 
 // BusDisconnected counts one disconnection in surmise_bus_disconnects_total.
 func (m *Metrics) BusDisconnected() { m.busDisconnects.Inc() }
@@ -277,6 +294,10 @@ func (m *Metrics) Estimator(name string, outputs, states, signals []string, gain
 		e.rejected = append(e.rejected, byReason)
 	}
 	e.primary = e.Gains(gains)
+	// The gains an estimator starts with were loaded and accepted: that
+	// first load is the latest successful one, so that an alert on a
+	// refused reload stays quiet on a fresh daemon.
+	e.lastReload.Set(1)
 	return e
 }
 

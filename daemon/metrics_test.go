@@ -264,3 +264,16 @@ func ExampleMetrics_Estimator() {
 	e.ObserveTick(StatusTracking, 80*time.Microsecond, 25*time.Microsecond, 0)
 	e.Primary().SetInnovation(0, 0.12, 0.3)
 }
+
+// A fresh estimator reports its start-up load as the latest successful one,
+// so that the refused-reload alert does not fire on every start
+// (deploy/prometheus/rules_test.yml has the matching rule test).
+func TestFreshEstimatorLastReloadSucceeded(t *testing.T) {
+	_, m, _ := newTestMetrics(t)
+	if v := testutil.ToFloat64(m.lastReload.WithLabelValues("loop")); v != 1 {
+		t.Errorf("surmise_gain_last_reload_success of a fresh estimator = %v, want 1", v)
+	}
+	if v := testutil.ToFloat64(m.reloads.WithLabelValues("loop", "refused")); v != 0 {
+		t.Errorf("refused reloads of a fresh estimator = %v, want 0", v)
+	}
+}

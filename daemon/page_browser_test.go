@@ -294,6 +294,15 @@ func TestPageInBrowser(t *testing.T) {
 		`.slice(0, 5).map(e => e.tagName + "." + e.className + " " + Math.round(e.getBoundingClientRect().right)).join(", "); })()`); wide != "" {
 		t.Errorf("wider than the %s px window: %s", eval(`String(document.documentElement.clientWidth)`), wide)
 	}
+	// The caution is on the page, and says a status is the estimator's.
+	if c := eval(`(document.querySelector(".caution") || {}).innerText || ""`); !strings.Contains(c, "not a safety function") || !strings.Contains(c, "not a process alarm") {
+		t.Errorf("caution on the page: %q", c)
+	}
+	// With the cursor off the charts, the legends show the latest values,
+	// not rows of dashes.
+	if l := eval(`[...document.querySelectorAll(".u-legend")].map(e => e.innerText).join(" | ")`); !strings.Contains(l, "latest") || strings.Contains(l, "time: —") {
+		t.Errorf("chart legends with the cursor off the charts: %q", l)
+	}
 	gains := eval(`document.getElementById("gains-table").innerText`)
 	for _, want := range []string{"poles-prediction", "kalman-current", "innovation RMS, tank_outlet"} {
 		if !strings.Contains(gains, want) {

@@ -19,23 +19,35 @@ type Reason uint8
 // The reasons a sample is refused. DecodeSample returns ReasonParse and
 // ReasonNaN; the others are the tick engine's.
 const (
-	ReasonUnknown Reason = iota // "unknown": refused for a reason not listed here
-	ReasonNaN                   // "nan": not a finite number (NaN, ±Inf, or beyond float64)
-	ReasonRange                 // "range": outside the signal's valid range
-	ReasonParse                 // "parse": not a number, or not a payload of the accepted forms
-	ReasonLate                  // "late": its timestamp is not newer than the signal's last sample used
-	ReasonStale                 // "stale": its timestamp is older than the signal's max_age
+	ReasonUnknown  Reason = iota // "unknown": refused for a reason not listed here
+	ReasonNaN                    // "nan": not a finite number (NaN, ±Inf, or beyond float64)
+	ReasonRange                  // "range": outside the signal's valid range
+	ReasonParse                  // "parse": not a number, or not a payload of the accepted forms
+	ReasonLate                   // "late": its timestamp is not newer than the signal's last sample used
+	ReasonStale                  // "stale": its timestamp is older than the signal's max_age (on arrival, or when its tick comes)
+	ReasonOversize               // "oversize": a payload longer than MaxSampleBytes
+	ReasonTime                   // "time": a timestamp before 1970, which no plant's clock gives
 	numReasons
 )
 
 var reasonNames = [numReasons]string{
-	ReasonUnknown: "unknown",
-	ReasonNaN:     "nan",
-	ReasonRange:   "range",
-	ReasonParse:   "parse",
-	ReasonLate:    "late",
-	ReasonStale:   "stale",
+	ReasonUnknown:  "unknown",
+	ReasonNaN:      "nan",
+	ReasonRange:    "range",
+	ReasonParse:    "parse",
+	ReasonLate:     "late",
+	ReasonStale:    "stale",
+	ReasonOversize: "oversize",
+	ReasonTime:     "time",
 }
+
+// MaxSampleBytes is the longest sample payload accepted: a number with its
+// time is well under a hundred bytes, and a longer payload is a mistake of
+// the publisher (the wrong subject, say), refused without parsing.
+const MaxSampleBytes = 4 << 10
+
+// epoch is the earliest sample time accepted.
+var epoch = time.Unix(0, 0)
 
 // String returns the label value of r ("nan", "range", …); a value outside
 // the enumeration is "unknown".
@@ -106,6 +118,9 @@ func quote(b []byte) string {
 //
 // The bare-number path allocates nothing for numbers of up to 32 bytes.
 func DecodeSample(data []byte, recv time.Time) (value float64, t time.Time, err error) {
+	if len(data) > MaxSampleBytes {
+		return 0, time.Time{}, refuse(ReasonOversize, "payload of %d bytes, more than %d", len(data), MaxSampleBytes)
+	}
 	b := trimSpace(data)
 	if len(b) > 0 && b[0] == '{' {
 		return decodeJSONSample(b, recv)
@@ -296,6 +311,9 @@ func decodeJSONSample(b []byte, recv time.Time) (float64, time.Time, error) {
 		t, err = time.Parse(time.RFC3339Nano, *stamp)
 		if err != nil {
 			return fail(`"time": %v`, err)
+		}
+		if t.Before(epoch) {
+			return 0, time.Time{}, refuse(ReasonTime, "JSON payload %s: \"time\" %s is before 1970", quote(b), *stamp)
 		}
 	}
 	return v, t, nil

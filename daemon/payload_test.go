@@ -35,6 +35,11 @@ func TestDecodeSample(t *testing.T) {
 		{"bare underflow to zero", "1e-400", 0, recv, 0, true},
 		{"bare largest float64", "1.7976931348623157e308", math.MaxFloat64, recv, 0, true},
 
+		{"time in year 1", `{"value": 1, "time": "0001-01-01T00:00:00Z"}`, 0, time.Time{}, ReasonTime, false},
+		{"time before 1970", `{"value": 1, "time": "1969-12-31T23:59:59.999Z"}`, 0, time.Time{}, ReasonTime, false},
+		{"time at 1970", `{"value": 1, "time": "1970-01-01T00:00:00Z"}`, 1, time.Unix(0, 0).UTC(), 0, true},
+		{"oversize", strings.Repeat(" ", MaxSampleBytes) + "1", 0, time.Time{}, ReasonOversize, false},
+
 		{"empty", "", 0, time.Time{}, ReasonParse, false},
 		{"only whitespace", "  \n", 0, time.Time{}, ReasonParse, false},
 		{"words", "hot", 0, time.Time{}, ReasonParse, false},

@@ -89,6 +89,10 @@ type CommissionerOptions struct {
 	// Gains is the gains file as loaded at start; its Active set is what
 	// the engine runs, its Candidate (if any) is started in shadow.
 	Gains *config.GainsFile
+	// GainsBytes, when not nil, are the bytes Gains was parsed from; else
+	// they are read from the plant's gains file when it still says the
+	// same.
+	GainsBytes []byte
 	// Engine is the estimator's engine. The Commissioner makes it run the
 	// sets of Gains from its next tick on.
 	Engine *Engine
@@ -257,7 +261,9 @@ func NewCommissioner(opts CommissionerOptions) (*Commissioner, error) {
 	// daemon was started with. Otherwise they stay unknown, and the first
 	// look at the disk (the watcher makes one as soon as it watches)
 	// reloads the gains, or refuses the plant file.
-	if data, err := os.ReadFile(c.plant.GainsPath); err == nil {
+	if opts.GainsBytes != nil {
+		c.inEffect = digest(opts.GainsBytes)
+	} else if data, err := os.ReadFile(c.plant.GainsPath); err == nil {
 		if g, err := config.ParseGains(c.plant.GainsPath, data, c.plant); err == nil && reflect.DeepEqual(g, opts.Gains) {
 			c.inEffect = digest(data)
 			c.gainsDisk = c.inEffect
@@ -659,14 +665,15 @@ func (d *Daemon) newCommissioning() error {
 	d.comm = &commissioning{audit: NewAudit(path), reload: make(chan string, 1)}
 	for i, e := range d.estimators {
 		c, err := NewCommissioner(CommissionerOptions{
-			Plant:    e.plant,
-			Gains:    d.opts.Plants[i].Gains,
-			Engine:   e.engine,
-			Metrics:  e.metrics,
-			Audit:    d.comm.audit,
-			Logger:   d.log,
-			MinDwell: d.opts.MinDwell,
-			OnGains:  func(g *config.GainsFile) { e.SetGains(g, true) },
+			Plant:      e.plant,
+			Gains:      d.opts.Plants[i].Gains,
+			GainsBytes: d.opts.Plants[i].GainsBytes,
+			Engine:     e.engine,
+			Metrics:    e.metrics,
+			Audit:      d.comm.audit,
+			Logger:     d.log,
+			MinDwell:   d.opts.MinDwell,
+			OnGains:    func(g *config.GainsFile) { e.SetGains(g, true) },
 		})
 		if err != nil {
 			return err

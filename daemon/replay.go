@@ -257,7 +257,7 @@ func NewBusSource(plant *config.Plant, rec *recording.BusRecording) *ReplaySourc
 		}
 		v, at, err := DecodeSample(m.Payload, m.Recv)
 		if err != nil {
-			src.Issues = append(src.Issues, recording.Issue{Line: m.Line, Column: m.Subject, Msg: err.Error()})
+			src.Issues = append(src.Issues, recording.Issue{Line: m.Line, Column: m.Subject, What: "subject", Msg: err.Error()})
 			continue
 		}
 		if isTruth {
@@ -268,8 +268,8 @@ func NewBusSource(plant *config.Plant, rec *recording.BusRecording) *ReplaySourc
 	}
 	for _, subj := range order {
 		sk := other[subj]
-		src.Issues = append(src.Issues, recording.Issue{Line: sk.line, Column: subj,
-			Msg: fmt.Sprintf("subject not wired in plant %s: %d messages skipped", plant.Name, sk.n)})
+		src.Issues = append(src.Issues, recording.Issue{Line: sk.line, Column: subj, What: "subject",
+			Msg: fmt.Sprintf("not wired in plant %s: %d messages skipped", plant.Name, sk.n)})
 	}
 	src.finish()
 	return src
@@ -604,7 +604,7 @@ func Replay(plant *config.Plant, sets []*estimator.Prepared, src *ReplaySource, 
 			if c.Refused[r] == 0 {
 				continue
 			}
-			res.Issues = append(res.Issues, recording.Issue{Line: st.first[i][r], Column: c.Name,
+			res.Issues = append(res.Issues, recording.Issue{Line: st.first[i][r], Column: c.Name, What: "signal",
 				Msg: fmt.Sprintf("%d %s refused by the engine (%s)%s", c.Refused[r], replayPlural(c.Refused[r], "sample"), r, refusalHint(r))})
 		}
 	}

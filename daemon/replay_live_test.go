@@ -8,8 +8,6 @@ import (
 	"testing"
 	"time"
 
-	"github.com/nats-io/nats.go"
-
 	"surmise/daemon"
 	"surmise/daemon/recording"
 	"surmise/daemon/simplant"
@@ -98,11 +96,9 @@ events:
 	})
 	defer remove()
 
-	nc, err := nats.Connect(r.ep.BusURL)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer nc.Close()
+	// The recorder subscribes to the plant's subjects: the local user's
+	// right, not an anonymous client's.
+	nc := connectLocal(t, r)
 	var rec bytes.Buffer
 	recorder, err := daemon.StartRecorder(nc, recording.NewWriter(&rec), []string{"pilot.hwl.>", "surmise.hotwater-loop.truth.>"})
 	if err != nil {

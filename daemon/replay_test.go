@@ -363,10 +363,10 @@ func TestReplayBusIssues(t *testing.T) {
 		got = append(got, is.String())
 	}
 	want := []string{
-		`line 34: column "tank_outlet": 1 sample refused by the engine (range): outside the signal's range in the plant file`,
-		`line 35: column "pilot.hwl.tt120.pv": sample refused (parse): "warm" is not a decimal number`,
-		`line 36: column "hx_outlet": 1 sample refused by the engine (late): dated at or before a tick that had already run when it was received`,
-		`line 37: column "pilot.hwl.fan.pv": subject not wired in plant hotwater-loop: 2 messages skipped`,
+		`line 34: signal "tank_outlet": 1 sample refused by the engine (range): outside the signal's range in the plant file`,
+		`line 35: subject "pilot.hwl.tt120.pv": sample refused (parse): "warm" is not a decimal number`,
+		`line 36: signal "hx_outlet": 1 sample refused by the engine (late): dated at or before a tick that had already run when it was received`,
+		`line 37: subject "pilot.hwl.fan.pv": not wired in plant hotwater-loop: 2 messages skipped`,
 	}
 	if strings.Join(got, "\n") != strings.Join(want, "\n") {
 		t.Errorf("issues:\n%s\nwant:\n%s", strings.Join(got, "\n"), strings.Join(want, "\n"))

@@ -1,6 +1,7 @@
 package daemon
 
 import (
+	"errors"
 	"fmt"
 	"sync"
 	"sync/atomic"
@@ -9,6 +10,7 @@ import (
 	"github.com/nats-io/nats.go"
 
 	"surmise/config"
+	"surmise/daemon/lease"
 	"surmise/estimator"
 )
 
@@ -36,9 +38,14 @@ type Estimator struct {
 	fleet   *fleetLease          // its ownership in a fleet (fleet_run.go); nil outside one
 
 	gains   atomic.Pointer[config.GainsFile]
+	lease   atomic.Pointer[lease.Lease] // this estimator's, once taken or awaited
 	gainsOK atomic.Bool
 
 	lastTick atomic.Int64 // start of the latest tick (Daemon.now), 0 before the first
+	// sampled is set by the first sample the engine accepts: until then
+	// every tick runs on operating-point inputs without a measurement, and
+	// the estimator is not ready.
+	sampled atomic.Bool
 
 	// Touched by its ticks only (the ticks of one job never overlap).
 	est       *Estimate
@@ -136,6 +143,8 @@ func (e *Estimator) receive(s *signal, data []byte) {
 	}
 	if r, ok := e.engine.Offer(s.index, v, at, recv); !ok {
 		e.logRefused(s, r, nil)
+	} else if !e.sampled.Load() {
+		e.sampled.Store(true)
 	}
 }
 
@@ -184,16 +193,21 @@ func (e *Estimator) tick(t Tick) {
 	d := e.d
 	e.engine.Tick(t.Due, e.est)
 	e.payload = e.est.AppendJSON(e.payload[:0])
-	connected := d.busConnected()
-	if e.fleet != nil && !e.fleetTick() {
-		connected = false // not ours to publish (any more)
+	var ours bool
+	if e.fleet != nil {
+		ours = e.fleetTick() // every tick: it also checkpoints
+	} else {
+		ours = e.mayPublish()
 	}
+	connected := d.busConnected() && ours
 	if connected {
 		// With the reconnect buffer off, Publish fails rather than queue
 		// when the connection dropped since IsConnected: nothing stale is
 		// sent later.
 		if err := d.bus.Conn().Publish(e.subject, e.payload); err == nil {
 			e.observeLatency(time.Now())
+		} else if errors.Is(err, nats.ErrMaxPayload) {
+			d.metrics.BusDropped(DropOversize, 1)
 		}
 	}
 	e.afterTick(connected)
@@ -201,7 +215,7 @@ func (e *Estimator) tick(t Tick) {
 	e.timing = TickTiming{Lateness: t.Lateness, Compute: time.Since(t.Start), Missed: t.Missed}
 	e.metrics.ObserveTick(e.est.Status, e.timing.Lateness, e.timing.Compute, e.timing.Missed)
 	e.lastTick.Store(d.now())
-	ready := connected && e.gainsOK.Load()
+	ready := connected && e.gainsOK.Load() && e.sampled.Load()
 	if r := b2i(ready); r != e.lastReady {
 		e.metrics.SetReady(ready)
 		e.lastReady = r

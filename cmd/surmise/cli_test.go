@@ -244,6 +244,15 @@ func TestUsageErrors(t *testing.T) {
 	}
 }
 
+// TestCheckMissingFile: a file that cannot be read is reported in the
+// command's name, with status 1.
+func TestCheckMissingFile(t *testing.T) {
+	_, errOut, code := cli(t, "check", "no-such-plant.yaml")
+	if code != 1 || !strings.HasPrefix(errOut, "surmise check: cannot read the plant file: open no-such-plant.yaml:") {
+		t.Errorf("check of a missing file: status %d, %q", code, errOut)
+	}
+}
+
 func firstLine(s string) string {
 	line, _, _ := strings.Cut(s, "\n")
 	return line

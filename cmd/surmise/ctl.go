@@ -14,6 +14,7 @@ import (
 	"sort"
 	"strconv"
 	"strings"
+	"sync/atomic"
 	"text/tabwriter"
 	"time"
 
@@ -58,21 +59,19 @@ func (l *ctlList) Set(v string) error { *l = append(*l, v); return nil }
 
 // ctlFlags are the flags of `surmise ctl`.
 type ctlFlags struct {
-	nats, creds, tlsCA string
-	timeout            time.Duration
-	json               bool
-	set, candidate     string
-	noCandidate        bool
-	adopt, yes         bool
-	state, std         ctlList
+	bus            natsFlags
+	timeout        time.Duration
+	json           bool
+	set, candidate string
+	noCandidate    bool
+	adopt, yes     bool
+	state, std     ctlList
 }
 
 func runCtl(ctx context.Context, e *env, args []string) error {
 	flags := newFlags(e, "ctl", ctlSynopsis)
 	var f ctlFlags
-	flags.StringVar(&f.nats, "nats", "nats://127.0.0.1:4222", "NATS server `URL`s, comma-separated (the default is where surmise run's embedded server listens)")
-	flags.StringVar(&f.creds, "creds", "", "NATS user credentials `FILE` (JWT and seed)")
-	flags.StringVar(&f.tlsCA, "tls-ca", "", "PEM `FILE` of the CAs that sign the NATS server's certificate")
+	f.bus.register(flags, "NATS server `URL`s, comma-separated (default: the embedded servers of this user's local daemons, found by their access files, then "+nats.DefaultURL+")")
 	flags.DurationVar(&f.timeout, "timeout", 5*time.Second, "how long to wait for the connection and for the reply, a `DURATION`")
 	flags.BoolVar(&f.json, "json", false, "print the daemon's JSON reply as it came")
 	flags.StringVar(&f.set, "set", "", "load: run the set `NAME` instead of the file's active set")
@@ -217,24 +216,62 @@ func ctlNameValues(flagName string, list []string) (map[string]float64, error) {
 	return out, nil
 }
 
-// ctlRequest connects, sends the request and waits for the reply.
+// ctlRequest connects, sends the request and waits for the reply. Without
+// --nats it asks each local daemon in turn until one answers for the
+// estimator.
 func ctlRequest(ctx context.Context, f ctlFlags, msg *nats.Msg) (*nats.Msg, error) {
-	nc, err := dialClient("surmise ctl", f.nats, f.creds, f.tlsCA, f.timeout)
+	var reply *nats.Msg
+	// The server refuses a publish it does not allow asynchronously: the
+	// error handler hears it, and the request stops waiting.
+	denied := make(chan error, 8)
+	onError := nats.ErrorHandler(func(_ *nats.Conn, _ *nats.Subscription, err error) {
+		select {
+		case denied <- err:
+		default:
+		}
+	})
+	ask := func(nc *nats.Conn) error {
+		rctx, cancel := context.WithTimeout(ctx, f.timeout)
+		defer cancel()
+		var refusal atomic.Pointer[error]
+		go func() {
+			select {
+			case err := <-denied:
+				refusal.Store(&err)
+				cancel()
+			case <-rctx.Done():
+			}
+		}()
+		r, err := nc.RequestMsgWithContext(rctx, msg)
+		if p := refusal.Load(); p != nil {
+			err = *p
+		}
+		where := daemon.RedactURL(nc.ConnectedUrlRedacted())
+		switch {
+		case errors.Is(err, nats.ErrNoResponders):
+			return fmt.Errorf("no daemon answers on %s at %s: %w", msg.Subject, where, errTryNext)
+		case errors.Is(err, context.DeadlineExceeded):
+			// Every daemon listens on surmise.control.*.<verb> and only
+			// the one that runs the estimator answers: silence means
+			// "not here".
+			return fmt.Errorf("no reply on %s at %s within %v (a daemon answers only for the estimators it runs): %w", msg.Subject, where, f.timeout, errTryNext)
+		case err != nil && strings.Contains(strings.ToLower(err.Error()), "permissions violation"):
+			return &exitError{code: 1, msg: fmt.Sprintf("%s at %s: not allowed to call the control service: %v (log in with --creds, --nkey or --user-file)", msg.Subject, where, err)}
+		case err != nil:
+			return &exitError{code: 1, msg: fmt.Sprintf("%s at %s: %v", msg.Subject, where, err)}
+		}
+		reply = r
+		return nil
+	}
+	nc, err := f.bus.dial(f.timeout, ask, nats.Name("surmise ctl"), nats.NoReconnect(), onError)
 	if err != nil {
+		var ee *exitError
+		if errors.As(err, &ee) && strings.Contains(ee.msg, errTryNext.Error()) {
+			ee.msg = strings.Replace(ee.msg, "cannot reach the bus", "no daemon answers", 1) + " (and is the estimator's name right?)"
+		}
 		return nil, err
 	}
-	defer nc.Close()
-	ctx, cancel := context.WithTimeout(ctx, f.timeout)
-	defer cancel()
-	reply, err := nc.RequestMsgWithContext(ctx, msg)
-	switch {
-	case errors.Is(err, nats.ErrNoResponders):
-		return nil, &exitError{code: 1, msg: fmt.Sprintf("no daemon answers on %s (is surmise run up on %s, and is the estimator's name right?)", msg.Subject, f.nats)}
-	case errors.Is(err, context.DeadlineExceeded):
-		return nil, &exitError{code: 1, msg: fmt.Sprintf("no reply on %s within %v (a daemon answers only for the estimators it runs: is the name right?)", msg.Subject, f.timeout)}
-	case err != nil:
-		return nil, &exitError{code: 1, msg: fmt.Sprintf("%s: %v", msg.Subject, err)}
-	}
+	nc.Close()
 	return reply, nil
 }
 

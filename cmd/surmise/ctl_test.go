@@ -39,6 +39,8 @@ type ctlDaemon struct {
 func startCtlDaemon(t *testing.T) *ctlDaemon {
 	t.Helper()
 	c := &ctlDaemon{dir: t.TempDir(), stateDir: t.TempDir()}
+	// The daemon's local access files go here, where ctl finds them.
+	t.Setenv("XDG_RUNTIME_DIR", t.TempDir())
 	src, err := os.ReadFile(filepath.Join("..", "..", "daemon", "testdata", "commission", "cart.yaml"))
 	if err != nil {
 		t.Fatal(err)
@@ -95,6 +97,8 @@ func startCtlDaemon(t *testing.T) *ctlDaemon {
 		t.Fatal("the daemon did not start")
 	}
 
+	// An anonymous client, as a plant bridge: it may publish the wired
+	// signals and read the estimates.
 	nc, err := nats.Connect(c.url)
 	if err != nil {
 		t.Fatal(err)
@@ -129,10 +133,11 @@ func startCtlDaemon(t *testing.T) *ctlDaemon {
 	return c
 }
 
-// ctl runs `surmise ctl --nats URL ARGS…` in-process.
+// ctl runs `surmise ctl ARGS…` in-process, with no connection flag: it
+// finds the daemon by its local access files.
 func (c *ctlDaemon) ctl(t *testing.T, args ...string) (stdout, stderr string, code int) {
 	t.Helper()
-	return cli(t, append([]string{"ctl", "--nats", c.url}, args...)...)
+	return cli(t, append([]string{"ctl"}, args...)...)
 }
 
 // mustCtl runs ctl and wants exit status 0 and every one of wants in its
@@ -226,11 +231,11 @@ func TestCtlEndToEnd(t *testing.T) {
 	}{
 		{[]string{"cart", "promote"}, "cart promote refused (409): no candidate gain set runs in shadow"},
 		{[]string{"cart", "reset", "--state", "speed=1"}, `refused (400): reset refused`},
-		{[]string{"cart", "load", plantPathFor(c, "cart.yaml")}, "refused (422)"},
-		// No daemon runs it: nobody answers for it (every daemon listens
-		// on surmise.control.*.status, and only the one that runs an
-		// estimator replies).
-		{[]string{"trolley", "status", "--timeout", "500ms"}, "no reply on surmise.control.trolley.status within 500ms"},
+		{[]string{"cart", "load", plantPathFor(c, "cart.yaml")}, "refused (422): gains file " + plantPathFor(c, "cart.yaml") + " (sent over the bus) refused\n  " + plantPathFor(c, "cart.yaml") + ":"},
+		// No daemon runs it: every daemon listens on
+		// surmise.control.*.status, and only the one that runs an
+		// estimator replies.
+		{[]string{"trolley", "status", "--timeout", "500ms"}, "no reply on surmise.control.trolley.status"},
 	} {
 		_, errOut, code := c.ctl(t, r.args...)
 		if code != 1 || !strings.Contains(errOut, r.want) {
@@ -365,6 +370,25 @@ func FuzzCtlNameValues(f *testing.F) {
 	})
 }
 
+// The control service from the outside without the local user: refused by
+// the server at once, with a message that says how to log in; with the
+// daemon's user file handed over by path, answered.
+func TestCtlNeedsCredentials(t *testing.T) {
+	c := startCtlDaemon(t)
+	start := time.Now()
+	_, stderr, code := cli(t, "ctl", "--nats", c.url, "cart", "status")
+	if code != 1 || !strings.Contains(stderr, "not allowed") || !strings.Contains(stderr, "--user-file") {
+		t.Errorf("anonymous ctl: exit %d, %q; want 1 and a refusal naming --user-file", code, stderr)
+	}
+	if took := time.Since(start); took > 3*time.Second {
+		t.Errorf("anonymous ctl refused after %v, want at once", took)
+	}
+	userFile := filepath.Join(c.stateDir, daemon.LocalUserFile)
+	if _, stderr, code := cli(t, "ctl", "--nats", c.url, "--user-file", userFile, "cart", "status"); code != 0 {
+		t.Errorf("ctl with the state directory's user file: exit %d, %s", code, stderr)
+	}
+}
+
 // TestNISWords: a windowed NIS mean is said to be inside its band only
 // when it is.
 func TestNISWords(t *testing.T) {
@@ -383,4 +407,15 @@ func TestNISWords(t *testing.T) {
 			t.Errorf("nisWords(%v, %v, %v) = %q, want %q", tc.mean, tc.lo, tc.hi, got, tc.want)
 		}
 	}
+}
+
+// localUser reads the user and password the daemon of c wrote for local
+// clients (nats.user in its state directory).
+func localUser(t *testing.T, c *ctlDaemon) (user, password string) {
+	t.Helper()
+	user, password, err := daemon.ReadUserFile(filepath.Join(c.stateDir, daemon.LocalUserFile))
+	if err != nil {
+		t.Fatal(err)
+	}
+	return user, password
 }

@@ -120,7 +120,7 @@ func runDemo(ctx context.Context, e *env, args []string) error {
 	}
 	started := make(chan daemon.Endpoints, 1)
 	d, err := daemon.New(daemon.Options{
-		Plants:           []daemon.PlantSpec{{Plant: runPlant, Gains: runGains}},
+		Plants:           []daemon.PlantSpec{{Plant: runPlant, Gains: runGains, GainsBytes: demoGainsYAML}},
 		Bus:              daemon.BusOptions{Embedded: ns, Name: "surmise-demo-daemon"},
 		Listen:           f.listen,
 		Logger:           log,
@@ -252,7 +252,9 @@ func describeDemo(w io.Writer, plant *config.Plant, gains *config.GainsFile, ep 
 	if f.length > 0 {
 		how = fmt.Sprintf("stops after %v", f.length)
 	}
-	fmt.Fprintf(w, "every %v: plant time, status, windowed NIS mean [95 %% band], a hidden state estimated (± 1σ) and true; %s\n", f.every, how)
+	fmt.Fprintf(w, "caution   an invented plant. On a real one, estimates are a model's inference, not measurements: an estimator is\n")
+	fmt.Fprintf(w, "          not a safety function; interlocks and trips act on measured signals; follow local codes and licensed practice.\n")
+	fmt.Fprintf(w, "every %v: plant time, status (the estimator's own, not a process alarm), windowed NIS mean [95 %% band], a hidden state estimated (± 1σ) and true; %s\n", f.every, how)
 }
 
 // demoWatch keeps what the demo's lines show: the latest estimate of each
@@ -285,6 +287,7 @@ type demoLane struct {
 	value    *float64
 	std      *float64
 	time     time.Time
+	step     time.Duration // between its last two estimates
 	received bool
 }
 
@@ -319,6 +322,9 @@ func (w *demoWatch) estimate(l *demoLane, data []byte) {
 	w.mu.Lock()
 	defer w.mu.Unlock()
 	l.n++
+	if l.received {
+		l.step = est.Time.Sub(l.time)
+	}
 	l.received = true
 	l.status, l.gains, l.nisMean, l.time = est.Status, est.Gains, est.NISMean, est.Time
 	if len(est.NISBand) == 2 {
@@ -348,6 +354,12 @@ func (w *demoWatch) truthAt(t time.Time) (float64, bool) {
 		}
 	}
 	return best.value, found
+}
+
+// running reports whether the shadow lane l still publishes: its latest
+// estimate is at most two ticks older than the active lane's.
+func (l *demoLane) running(active *demoLane) bool {
+	return l.received && !active.time.After(l.time.Add(2*max(active.step, 0)))
 }
 
 func (w *demoWatch) counts() (active, shadow int) {
@@ -381,8 +393,12 @@ func (w *demoWatch) line(out io.Writer, plantTime time.Duration) {
 	if v, ok := w.truthAt(w.active.time); ok && w.active.received {
 		fmt.Fprintf(&b, " (true %.2f)", v)
 	}
-	if w.shadow.received {
+	switch {
+	case w.shadow.running(&w.active):
 		fmt.Fprintf(&b, "  | shadow %s %s", w.shadow.gains, lane(&w.shadow))
+	case w.shadow.received:
+		// It stopped: a promotion made it active, or a load dropped it.
+		fmt.Fprintf(&b, "  | no shadow set running")
 	}
 	fmt.Fprintln(out, b.String())
 }

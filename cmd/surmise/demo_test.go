@@ -3,6 +3,9 @@ package main
 import (
 	"bufio"
 	"bytes"
+	"crypto/sha256"
+	"encoding/json"
+	"fmt"
 	"net/http"
 	"os"
 	"os/exec"
@@ -13,6 +16,8 @@ import (
 	"time"
 
 	"github.com/nats-io/nats.go"
+
+	"surmise/daemon"
 )
 
 // TestDemoFilesAreTheTestdata checks that the plant and gains built into
@@ -108,6 +113,18 @@ func TestDemo(t *testing.T) {
 	if err := nc.Flush(); err != nil {
 		t.Fatal(err)
 	}
+	// The status names the SHA-256 of the built-in gains in effect.
+	if out, errOut, code := cli(t, "ctl", "--nats", url, "--json", "hotwater-loop", "status"); code != 0 {
+		t.Errorf("ctl status: exit %d: %s", code, errOut)
+	} else {
+		var st daemon.StatusReply
+		if err := json.Unmarshal([]byte(out), &st); err != nil {
+			t.Fatal(err)
+		}
+		if want := fmt.Sprintf("%x", sha256.Sum256(demoGainsYAML)); st.SHA256 != want {
+			t.Errorf("ctl status: sha256 %q, want %s, the built-in gains file's", st.SHA256, want)
+		}
+	}
 	resp, err := http.Get("http://" + addr + "/healthz")
 	if err != nil {
 		t.Fatal(err)
@@ -142,4 +159,43 @@ func TestDemo(t *testing.T) {
 		t.Errorf("%d shadow estimates received, want at least 50", n)
 	}
 	t.Logf("endpoints printed after %v; %d estimates and %d shadow estimates received", startup.Round(time.Millisecond), estimates.Load(), shadow.Load())
+}
+
+// TestDemoShadowStops: once the shadow lane stops publishing (a promotion
+// made its set active), the demo's line says no shadow set runs instead of
+// repeating its last estimate.
+func TestDemoShadowStops(t *testing.T) {
+	plant, _, err := demoPlant()
+	if err != nil {
+		t.Fatal(err)
+	}
+	w := newDemoWatch(plant)
+	t0 := time.Date(2026, 12, 2, 10, 0, 0, 0, time.UTC)
+	est := func(l *demoLane, k int, gains string) {
+		w.estimate(l, []byte(fmt.Sprintf(`{"time": %q, "status": "tracking", "gains": %q, "nis_mean": 1, "nis_band": [0.5, 1.5], "states": {"element_temp": {"value": 90, "std": 0.1}}}`,
+			t0.Add(time.Duration(k)*time.Second).Format(time.RFC3339), gains)))
+	}
+	line := func() string {
+		var b strings.Builder
+		w.line(&b, 0)
+		return b.String()
+	}
+	for k := 0; k < 5; k++ {
+		est(&w.active, k, "poles-prediction")
+		est(&w.shadow, k, "kalman-current")
+	}
+	if l := line(); !strings.Contains(l, "| shadow kalman-current tracking") {
+		t.Errorf("both lanes running: %q", l)
+	}
+	for k := 5; k < 10; k++ {
+		est(&w.active, k, "kalman-current")
+	}
+	if l := line(); !strings.Contains(l, "| no shadow set running") || strings.Contains(l, "| shadow kalman-current") {
+		t.Errorf("the shadow lane stopped four ticks ago: %q", l)
+	}
+	est(&w.shadow, 10, "poles-prediction")
+	est(&w.active, 10, "kalman-current")
+	if l := line(); !strings.Contains(l, "| shadow poles-prediction tracking") {
+		t.Errorf("the shadow lane runs again: %q", l)
+	}
 }

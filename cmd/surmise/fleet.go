@@ -39,20 +39,18 @@ Exit status: 0 done, 1 refused or failed, 2 usage.`
 
 // fleetFlags are the flags of `surmise fleet`.
 type fleetFlags struct {
-	fleet              string
-	nats, creds, tlsCA string
-	timeout            time.Duration
-	json               bool
-	gains, history     bool
+	fleet          string
+	bus            natsFlags
+	timeout        time.Duration
+	json           bool
+	gains, history bool
 }
 
 func runFleet(ctx context.Context, e *env, args []string) error {
 	flags := newFlags(e, "fleet", fleetSynopsis)
 	var f fleetFlags
 	flags.StringVar(&f.fleet, "fleet", "", "the fleet's `NAME` (required)")
-	flags.StringVar(&f.nats, "nats", "nats://127.0.0.1:4222", "NATS server `URL`s, comma-separated")
-	flags.StringVar(&f.creds, "creds", "", "NATS user credentials `FILE` (JWT and seed)")
-	flags.StringVar(&f.tlsCA, "tls-ca", "", "PEM `FILE` of the CAs that sign the NATS server's certificate")
+	f.bus.register(flags, "NATS server `URL`s, comma-separated (default: this user's local daemon, else nats://127.0.0.1:4222)")
 	flags.DurationVar(&f.timeout, "timeout", 10*time.Second, "how long to wait for the server (a `DURATION` such as 10s)")
 	flags.BoolVar(&f.json, "json", false, "ls, get --history: print JSON")
 	flags.BoolVar(&f.gains, "gains", false, "get: print the gains file instead of the plant file")
@@ -94,7 +92,7 @@ func runFleet(ctx context.Context, e *env, args []string) error {
 		}
 	}
 
-	nc, err := dialClient("surmise fleet", f.nats, f.creds, f.tlsCA, f.timeout)
+	nc, err := f.bus.dial(f.timeout, nil, nats.Name("surmise fleet"), nats.NoReconnect())
 	if err != nil {
 		return err
 	}
@@ -234,21 +232,4 @@ func fleetList(ctx context.Context, e *env, store *daemon.FleetStore, asJSON boo
 		fmt.Fprintf(w, "%s\t%d\t%d\t%s\t%s\t%s\n", en.Estimator, en.PlantRevision, en.GainsRevision, owner, status, cp)
 	}
 	return w.Flush()
-}
-
-// dialClient connects a short-lived client (ctl, fleet) to url, without
-// reconnecting; a failure is an exit status 1 that says where it tried.
-func dialClient(name, url, creds, tlsCA string, timeout time.Duration) (*nats.Conn, error) {
-	opts := []nats.Option{nats.Name(name), nats.Timeout(timeout), nats.NoReconnect()}
-	if creds != "" {
-		opts = append(opts, nats.UserCredentials(creds))
-	}
-	if tlsCA != "" {
-		opts = append(opts, nats.RootCAs(tlsCA))
-	}
-	nc, err := nats.Connect(url, opts...)
-	if err != nil {
-		return nil, &exitError{code: 1, msg: fmt.Sprintf("cannot reach the bus at %s: %v", url, err)}
-	}
-	return nc, nil
 }

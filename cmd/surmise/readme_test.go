@@ -118,6 +118,8 @@ func TestReadmeCommissioning(t *testing.T) {
 		t.Fatal(err)
 	}
 	t.Chdir(root)
+	// The daemon's local access files go here, where ctl finds them.
+	t.Setenv("XDG_RUNTIME_DIR", t.TempDir())
 
 	ctx, cancel := context.WithCancel(context.Background())
 	var wg sync.WaitGroup
@@ -173,7 +175,8 @@ func TestReadmeCommissioning(t *testing.T) {
 				waitForLanes(t, url, 20)
 				waitedForTicks = true
 			}
-			ctlArgs := append([]string{"ctl", "--nats", url}, args[1:]...)
+			// As the README writes it: ctl finds the daemon by itself.
+			ctlArgs := append([]string{"ctl"}, args[1:]...)
 			stdout, stderr, code := cli(t, ctlArgs...)
 			shown := strings.Join(c.shown, "\n")
 			want := 0
@@ -209,7 +212,7 @@ func waitForLanes(t *testing.T, url string, n uint64) {
 	t.Helper()
 	deadline := time.Now().Add(30 * time.Second)
 	for {
-		out, _, code := cli(t, "ctl", "--nats", url, "--json", "cart", "status")
+		out, _, code := cli(t, "ctl", "--json", "cart", "status") // found by its local access files
 		var st daemon.StatusReply
 		if code == 0 && json.Unmarshal([]byte(out), &st) == nil && st.Tick != nil && st.Shadow != nil && st.Tick.Seq >= n {
 			return

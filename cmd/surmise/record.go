@@ -32,17 +32,18 @@ the recording to FILE goes on as well. --export --stream NAME --out FILE
 writes what the stream holds to FILE and exits.`
 
 type recordFlags struct {
-	nats, subjects, out, stream string
-	maxAge, length              time.Duration
-	maxBytes                    int64
-	replicas                    int
-	export                      bool
+	bus                   natsFlags
+	subjects, out, stream string
+	maxAge, length        time.Duration
+	maxBytes              int64
+	replicas              int
+	export                bool
 }
 
 func runRecord(ctx context.Context, e *env, args []string) error {
 	fs := newFlags(e, "record", recordSynopsis)
 	var f recordFlags
-	fs.StringVar(&f.nats, "nats", nats.DefaultURL, "NATS server `URL`")
+	f.bus.register(fs, "NATS server `URL`s, comma-separated (default: this user's newest local daemon, found by its access files, else "+nats.DefaultURL+")")
 	fs.StringVar(&f.subjects, "subjects", "", "the `SUBJECTS` to record, comma-separated, such as pilot.hwl.>,surmise.>")
 	fs.StringVar(&f.out, "out", "", "the recording `FILE` (appended to)")
 	fs.DurationVar(&f.length, "for", 0, "stop after this `DURATION`, such as 20s (default: until interrupted)")
@@ -85,9 +86,9 @@ func runRecord(ctx context.Context, e *env, args []string) error {
 			return usageError("--subjects: %v", err)
 		}
 	}
-	nc, err := nats.Connect(f.nats, nats.Name("surmise-record"), nats.MaxReconnects(-1))
+	nc, err := f.bus.dial(5*time.Second, nil, nats.Name("surmise-record"), nats.MaxReconnects(-1))
 	if err != nil {
-		return fmt.Errorf("connecting to %s: %w (is a server running? 'surmise run' and 'surmise demo' start one)", f.nats, err)
+		return err
 	}
 	defer nc.Close()
 
@@ -139,7 +140,11 @@ func runRecord(ctx context.Context, e *env, args []string) error {
 	if err != nil {
 		return err
 	}
-	fmt.Fprintf(e.stdout, "recording %s from %s to %s; interrupt to stop\n", strings.Join(subjects, ","), nc.ConnectedUrlRedacted(), f.out)
+	until := "until interrupted (Ctrl-C)"
+	if f.length > 0 {
+		until = fmt.Sprintf("for %v (Ctrl-C stops it sooner)", f.length)
+	}
+	fmt.Fprintf(e.stdout, "recording %s from %s to %s %s\n", strings.Join(subjects, ","), nc.ConnectedUrlRedacted(), f.out, until)
 	var timeout <-chan time.Time
 	if f.length > 0 {
 		t := time.NewTimer(f.length)

@@ -224,8 +224,12 @@ func writeReplaySummary(w io.Writer, plant *config.Plant, src *daemon.ReplaySour
 		pct := func(k int) string { return fmt.Sprintf("%.1f %%", 100*float64(k)/float64(max(s.Ticks, 1))) }
 		fmt.Fprintf(w, "%s (%s)\n", s.Gains, s.Form)
 		fmt.Fprintf(w, "  status      tracking %s, coasting %s, stale-input %s, suspect %s\n", pct(s.Tracking), pct(s.Coasting), pct(s.StaleInput), pct(s.Suspect))
-		fmt.Fprintf(w, "  NIS         mean %s over %d ticks (%s outputs on average), %.1f %% inside the 95 %% band; outliers rejected %d\n",
-			fnum(s.MeanNIS), s.NISTicks, fnum(s.MeanDof), 100*s.NISInBand, s.Outliers)
+		if s.NISTicks == 0 {
+			fmt.Fprintf(w, "  NIS         none: this gain set has no innovation covariance S, so no NIS and no outlier gate\n")
+		} else {
+			fmt.Fprintf(w, "  NIS         mean %s over %d ticks (%s outputs on average), %.1f %% inside the 95 %% band; outliers rejected %d\n",
+				fnum(s.MeanNIS), s.NISTicks, fnum(s.MeanDof), 100*s.NISInBand, s.Outliers)
+		}
 		for _, o := range s.Outputs {
 			white := "white"
 			switch {

@@ -153,8 +153,8 @@ func TestReplayIssuesPrinted(t *testing.T) {
 	// Lines 714 and 716: the first delayed samples of each output, 105 s
 	// into the first cycle (7 messages a sample, fewer while a sensor
 	// drops out or is slow).
-	want := data + `:714: column "tank_outlet": 30 samples refused by the engine (late): dated at or before a tick that had already run when it was received` + "\n" +
-		data + `:716: column "hx_outlet": 30 samples refused by the engine (late): dated at or before a tick that had already run when it was received` + "\n"
+	want := data + `:714: signal "tank_outlet": 30 samples refused by the engine (late): dated at or before a tick that had already run when it was received` + "\n" +
+		data + `:716: signal "hx_outlet": 30 samples refused by the engine (late): dated at or before a tick that had already run when it was received` + "\n"
 	if stderr != want {
 		t.Errorf("stderr:\n%s\nwant:\n%s", stderr, want)
 	}

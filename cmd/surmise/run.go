@@ -44,6 +44,13 @@ file runs in shadow on "<publish>.shadow.estimate"; 'surmise ctl' promotes it,
 rolls back, loads gains and resets the state over the bus. A changed plant
 file is refused until a restart.
 
+One daemon writes each estimator: before publishing, the daemon takes the
+estimator's lease on the bus (a JetStream key-value entry, renewed every
+few seconds). A second daemon for the same estimator refuses to start and
+names the first; with --standby it waits, ticking but publishing nothing,
+and takes over when the first stops or its lease lapses (about 6 s after it
+died).
+
 With --fleet NAME and no plant files it joins the fleet NAME: it runs its
 share of the estimators stored with 'surmise fleet put', one daemon per
 estimator (a lease in the fleet's bucket), takes over those of a daemon that
@@ -54,30 +61,25 @@ SIGINT or SIGTERM stops it after the tick in progress.`
 // runFlags are the flags of `surmise run`. The names are fixed: the systemd
 // unit and the Kubernetes manifests under deploy/ use them.
 type runFlags struct {
-	nats                 string
-	natsPort             int
-	creds, nkey          string
-	tlsCA, tlsCert, tlsK string
-	listen               string
-	logFormat, logLevel  string
-	stateDir             string
-	metrics              string
-	fleet, instance      string
+	bus                 natsFlags
+	natsPort            int
+	listen              string
+	logFormat, logLevel string
+	stateDir            string
+	standby             bool
+	metrics             string
+	fleet, instance     string
 }
 
 func runRun(ctx context.Context, e *env, args []string) error {
 	flags := newFlags(e, "run", runSynopsis)
 	var f runFlags
-	flags.StringVar(&f.nats, "nats", "", "NATS server `URL`s, comma-separated (default: start an embedded server)")
+	f.bus.register(flags, "NATS server `URL`s, comma-separated (default: start an embedded server)")
 	flags.IntVar(&f.natsPort, "nats-port", daemon.DefaultEmbeddedPort, "loopback `PORT` of the embedded server; the default falls back to a random free port when taken, -1 always picks one")
-	flags.StringVar(&f.creds, "creds", "", "NATS user credentials `FILE` (JWT and seed)")
-	flags.StringVar(&f.nkey, "nkey", "", "NATS user NKey seed `FILE`")
-	flags.StringVar(&f.tlsCA, "tls-ca", "", "PEM `FILE` of the CAs that sign the NATS server's certificate")
-	flags.StringVar(&f.tlsCert, "tls-cert", "", "PEM client certificate `FILE` for NATS")
-	flags.StringVar(&f.tlsK, "tls-key", "", "PEM client key `FILE` for NATS")
 	flags.StringVar(&f.listen, "listen", daemon.DefaultHTTPAddr, "HTTP `ADDRESS` of the live page (/), /metrics, /healthz and /readyz")
 	flags.StringVar(&f.logFormat, "log-format", "text", "log `FORMAT`: text or json (on standard error)")
 	flags.StringVar(&f.logLevel, "log-level", "info", "log `LEVEL`: debug, info, warn or error")
+	flags.BoolVar(&f.standby, "standby", false, "when another daemon runs an estimator of these plant files on the bus, wait and take over when it stops, instead of refusing to start")
 	flags.StringVar(&f.stateDir, "state-dir", "", "`DIRECTORY` for the embedded server's JetStream store (default: a temporary one, removed at exit)")
 	flags.StringVar(&f.metrics, "metrics", "full", "per-estimator metric `LEVEL`: full (every series) or summary (health only, for many estimators)")
 	flags.StringVar(&f.fleet, "fleet", "", "join the fleet `NAME`: run its share of the estimators of its bucket instead of plant files")
@@ -102,11 +104,11 @@ func runRun(ctx context.Context, e *env, args []string) error {
 	if err != nil {
 		return usageError("--metrics: %v", err)
 	}
-	if f.nats != "" && explicit["nats-port"] {
+	if f.bus.url != "" && explicit["nats-port"] {
 		return usageError("--nats-port is the embedded server's port; it cannot be combined with --nats")
 	}
-	if f.nats == "" && (f.creds != "" || f.nkey != "" || f.tlsCA != "" || f.tlsCert != "" || f.tlsK != "") {
-		return usageError("--creds, --nkey and the --tls-* flags are for a server given with --nats")
+	if f.bus.url == "" && f.bus.credentials() {
+		return usageError("--creds, --nkey, --user-file and the --tls-* flags are for a server given with --nats")
 	}
 
 	if f.instance == "" {
@@ -125,24 +127,18 @@ func runRun(ctx context.Context, e *env, args []string) error {
 		port = 0 // the default port if free, else a random one
 	}
 	d, err := daemon.New(daemon.Options{
-		Plants: plants,
-		Bus: daemon.BusOptions{
-			URL:       f.nats,
-			CredsFile: f.creds,
-			NKeyFile:  f.nkey,
-			TLSCA:     f.tlsCA,
-			TLSCert:   f.tlsCert,
-			TLSKey:    f.tlsK,
-		},
+		Plants:       plants,
+		Bus:          f.bus.busOptions(),
 		EmbeddedPort: port,
 		Listen:       f.listen,
 		Logger:       log,
 		StateDir:     f.stateDir,
+		Standby:      f.standby,
 		Metrics:      level,
 		Fleet:        fleet,
 		Instance:     f.instance,
 		Started: func(ep daemon.Endpoints) {
-			where := "connecting to " + ep.BusURL
+			where := "connecting to " + daemon.RedactURL(ep.BusURL)
 			if ep.Embedded {
 				where = ep.BusURL + " (embedded server"
 				if !explicit["nats-port"] && !strings.HasSuffix(ep.BusURL, fmt.Sprintf(":%d", daemon.DefaultEmbeddedPort)) {

@@ -74,7 +74,8 @@ func validate(t *testing.T, s *jsonschema.Schema, what string, data []byte) {
 // and reply definition that exists.
 func TestMessagesMatchSchemas(t *testing.T) {
 	c := startCtlDaemon(t)
-	nc, err := nats.Connect(c.url)
+	// The local user: the control service is not an anonymous client's.
+	nc, err := nats.Connect(c.url, nats.UserInfo(localUser(t, c)))
 	if err != nil {
 		t.Fatal(err)
 	}

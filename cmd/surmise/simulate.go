@@ -52,20 +52,21 @@ subjects, where interlocks, historians or controllers could take simulated
 values for real ones.`
 
 type simulateFlags struct {
-	nats, scenario, out, csv, start string
-	prefix                          string
-	remote                          bool
-	initial                         string
-	seed                            uint64
-	speed                           float64
-	length                          time.Duration
-	printScenario                   bool
+	bus                       natsFlags
+	scenario, out, csv, start string
+	prefix                    string
+	remote                    bool
+	initial                   string
+	seed                      uint64
+	speed                     float64
+	length                    time.Duration
+	printScenario             bool
 }
 
 func runSimulate(ctx context.Context, e *env, args []string) error {
 	fs := newFlags(e, "simulate", simulateSynopsis)
 	var f simulateFlags
-	fs.StringVar(&f.nats, "nats", nats.DefaultURL, "NATS server `URL` to publish to")
+	f.bus.register(fs, "NATS server `URL`s to publish to, comma-separated (default: this user's newest local daemon, found by its access files, else "+nats.DefaultURL+")")
 	fs.StringVar(&f.prefix, "prefix", "sim.", "put `PREFIX` before every published subject; '' publishes on the plant file's own subjects")
 	fs.BoolVar(&f.remote, "remote", false, "allow a NATS server that is not on this machine (see the caution above)")
 	fs.Uint64Var(&f.seed, "seed", 1, "`SEED` of the noise, the initial state, the PRBS phase and the jitter")
@@ -94,7 +95,7 @@ func runSimulate(ctx context.Context, e *env, args []string) error {
 		return usageError("--for %v: want a positive duration", f.length)
 	case toFile && explicit["speed"]:
 		return usageError("--speed paces publishing; --out and --csv write plant time at once")
-	case toFile && (explicit["nats"] || explicit["prefix"] || explicit["remote"]):
+	case toFile && (explicit["nats"] || f.bus.credentials() || explicit["prefix"] || explicit["remote"]):
 		return usageError("--out and --csv write a file; they publish nothing (--nats, --prefix and --remote are for publishing)")
 	case f.prefix != "" && !validPrefix(f.prefix):
 		return usageError("--prefix %q: want subject tokens ending in a dot, such as sim. or test.rig1.", f.prefix)
@@ -105,7 +106,7 @@ func runSimulate(ctx context.Context, e *env, args []string) error {
 		return usageError("--start is the time of the first sample of --out or --csv; published samples carry the time they are sent")
 	}
 	if !toFile && !f.remote {
-		if err := loopbackOnly(f.nats); err != nil {
+		if err := loopbackOnly(f.bus.url); f.bus.url != "" && err != nil {
 			return usageError("%v", err)
 		}
 	}
@@ -134,17 +135,18 @@ func runSimulate(ctx context.Context, e *env, args []string) error {
 		// reconnect only to the servers given.
 		opts = append(opts, nats.IgnoreDiscoveredServers())
 	}
-	nc, err := nats.Connect(f.nats, opts...)
+	nc, err := f.bus.dial(5*time.Second, nil, opts...)
 	if err != nil {
-		return fmt.Errorf("connecting to %s: %w (is a server running? 'surmise run' and 'surmise demo' start one)", f.nats, err)
+		return err
 	}
 	defer nc.Close()
 	describeSimulation(e, plant, sc, f.seed, f.speed, f.prefix)
 	fmt.Fprintf(e.stdout, "publishing invented values to %s", nc.ConnectedUrlRedacted())
 	if f.length > 0 {
-		fmt.Fprintf(e.stdout, " for %v of plant time", f.length)
+		fmt.Fprintf(e.stdout, " for %v of plant time (Ctrl-C stops it sooner)\n", f.length)
+	} else {
+		fmt.Fprintln(e.stdout, " until interrupted (Ctrl-C)")
 	}
-	fmt.Fprintln(e.stdout, "; interrupt to stop")
 	stats, err := simplant.Publish(ctx, nc, simplant.NewStream(sim), simplant.PublishOptions{
 		Clock:  simplant.Clock{Speed: f.speed},
 		For:    f.length,

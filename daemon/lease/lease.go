@@ -317,9 +317,19 @@ func (m *Manager) tryTake(ctx context.Context, l *Lease) (bool, error) {
 	sent := time.Now()
 	rev, err := m.kv.Create(ctx, l.key, val)
 	if errors.Is(err, jetstream.ErrKeyExists) {
-		return false, nil
-	}
-	if err != nil {
+		// Our own entry, left by a tenure of this Manager that was given
+		// up (a stalled server): nobody wrote since, so it is ours to
+		// take back, by compare-and-set on its revision.
+		e, gerr := m.kv.Get(ctx, l.key)
+		var o Owner
+		if gerr != nil || json.Unmarshal(e.Value(), &o) != nil || o.Instance != m.self.Instance {
+			return false, nil
+		}
+		sent = time.Now()
+		if rev, err = m.kv.Update(ctx, l.key, val, e.Revision()); err != nil {
+			return false, nil
+		}
+	} else if err != nil {
 		return false, fmt.Errorf("lease %s: %w", l.key, err)
 	}
 	l.rev, l.since, l.state = rev, o.Since, held

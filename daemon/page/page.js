@@ -254,6 +254,14 @@
     return specs;
   }
 
+  // latest returns the last value of series si that is not null.
+  function latest(u, si) {
+    const d = u.data[si];
+    if (!d) return null;
+    for (let i = d.length - 1; i >= 0; i--) if (d[i] != null) return d[i];
+    return null;
+  }
+
   function dataOf(store, spec) {
     return [store.cols.t, ...spec.series.map((s) => store.cols[s.col])];
   }
@@ -267,10 +275,16 @@
       cursor: { sync: { key: 'surmise' }, drag: { x: true, y: false } },
       scales: { x: { time: true } },
       axes: [axisX(), axisY(spec.unit)],
-      series: [{ label: 'time', value: (u, v) => (v == null ? '—' : clock(v)) }].concat(spec.series.map((s) => {
+      // The legend shows the values under the cursor, and the latest ones
+      // when the cursor is off the chart (not a row of dashes).
+      series: [{ label: 'time', value: (u, v, si, idx) => {
+        if (idx != null) return v == null ? '—' : clock(v);
+        const t = latest(u, 0);
+        return t == null ? '—' : 'latest ' + clock(t);
+      } }].concat(spec.series.map((s) => {
         const o = Object.assign({}, s);
         delete o.col;
-        o.value = (u, v) => num(v);
+        o.value = (u, v, si, idx) => num(idx == null ? latest(u, si) : v);
         return o;
       })),
       bands,
@@ -366,6 +380,7 @@
       cur.plots.forEach((u, k) => {
         u.setData(dataOf(store, cur.specs[k]), zoomed == null);
         if (zoomed) u.setScale('x', zoomed);
+        if (u.cursor.idx == null) u.setLegend({ idx: null });
         u.root.parentElement.dataset.points = String(store.cols.t.length);
       });
     } finally { programmatic--; }

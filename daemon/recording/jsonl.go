@@ -125,7 +125,7 @@ func ReadJSONL(r io.Reader, name string) (*BusRecording, error) {
 		msg := Message{Recv: recv, Subject: subj, Payload: arena[start : start+n : start+n], Line: line}
 		if k := len(rec.Messages); k > 0 && recv.Before(rec.Messages[k-1].Recv) {
 			sorted = false
-			rec.Issues = append(rec.Issues, Issue{Line: line, Column: "recv", Msg: fmt.Sprintf(
+			rec.Issues = append(rec.Issues, Issue{Line: line, Column: "recv", What: "field", Msg: fmt.Sprintf(
 				"%s is before %s on line %d; messages are sorted by receive time",
 				recv.Format(time.RFC3339Nano), rec.Messages[k-1].Recv.Format(time.RFC3339Nano), rec.Messages[k-1].Line)})
 		}

@@ -21,15 +21,24 @@ type Sample struct {
 type Issue struct {
 	Line   int    // line of the file, counting from 1
 	Column string // column (signal) name, "" when the issue concerns a whole row
-	Msg    string
+	// What says what Column names: "column" when empty (a CSV column), or
+	// "subject" (a bus recording's subject), "signal" (a plant's signal),
+	// "field" (a field of a bus recording's line).
+	What string
+	Msg  string
 }
 
-// String formats the issue as "line 12: column "T1": message".
+// String formats the issue as "line 12: column "T1": message" (or
+// "subject …", "signal …", "field …", as What says).
 func (i Issue) String() string {
 	if i.Column == "" {
 		return "line " + strconv.Itoa(i.Line) + ": " + i.Msg
 	}
-	return "line " + strconv.Itoa(i.Line) + ": column " + strconv.Quote(i.Column) + ": " + i.Msg
+	what := i.What
+	if what == "" {
+		what = "column"
+	}
+	return "line " + strconv.Itoa(i.Line) + ": " + what + " " + strconv.Quote(i.Column) + ": " + i.Msg
 }
 
 // Error is a problem that stops a recording from being read: it names the

@@ -391,6 +391,7 @@ figure svg { display: block; width: 100%; height: auto; }
 .legend { display: flex; flex-wrap: wrap; gap: 4px 20px; color: var(--muted); font-size: 13px; margin: 4px 0 0; }
 .swatch { display: inline-block; width: 22px; height: 10px; vertical-align: middle; margin-right: 6px; }
 .note { color: var(--muted); font-size: 12px; }
+.caution { font-size: 13px; border-left: 4px solid var(--warn); padding: 4px 10px; margin: 8px 0 0; }
 </style>
 </head>
 <body>
@@ -401,6 +402,7 @@ figure svg { display: block; width: 100%; height: auto; }
 <ul class="runs">
 {{range .Runs}}<li><span class="chip" style="background:{{.Color}}"></span><b>{{.Gains}}</b> · {{.Form}} <span class="fp">{{.Fingerprint}}</span></li>
 {{end}}</ul>
+<p class="caution"><b>Caution.</b> Estimates are a model's inference, not measurements, and a replay shows how gain sets behaved on this recording only. An estimator is not a safety function: interlocks and trips act on measured signals; commissioning follows local codes and licensed engineering practice. A status here is the estimator's judgement of itself, not a process alarm.</p>
 </header>
 
 <h2>Summary</h2>

@@ -53,7 +53,7 @@ func TestWriteHTML(t *testing.T) {
 		}
 	}
 	// Units on the axes.
-	for _, want := range []string{"innovation (°C)", "T_tank (°C)", "offset (K)", "time since 2024-05-06 06:00:00 UTC (min)"} {
+	for _, want := range []string{"not a safety function", "not a process alarm", "innovation (°C)", "T_tank (°C)", "offset (K)", "time since 2024-05-06 06:00:00 UTC (min)"} {
 		if !strings.Contains(page, want) {
 			t.Errorf("no axis label %q", want)
 		}
