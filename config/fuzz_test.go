@@ -6,6 +6,8 @@ import (
 	"path/filepath"
 	"strings"
 	"testing"
+
+	"gonum.org/v1/gonum/mat"
 )
 
 // addSeeds adds every file matching the patterns to the fuzz corpus.
@@ -89,4 +91,59 @@ func FuzzParseGains(f *testing.F) {
 		}
 		sameGains(t, back, g)
 	})
+}
+
+// FuzzRewriteNoise feeds arbitrary documents to RewriteNoise: it must
+// return an error or a document, never panic; and a document that parsed
+// as a plant before must still parse after its noise is rewritten with the
+// noise it had.
+func FuzzRewriteNoise(f *testing.F) {
+	for _, name := range []string{"hotwater-loop.yaml", "hotwater-loop-discrete.yaml"} {
+		data, err := os.ReadFile(filepath.Join("..", "testdata", "plants", name))
+		if err != nil {
+			f.Fatal(err)
+		}
+		f.Add(data)
+	}
+	f.Add([]byte("noise: {process: {std: [1]}, measurement: {covariance: [[1]]}}"))
+	f.Add([]byte("- a\n- b"))
+	f.Fuzz(func(t *testing.T, data []byte) {
+		q := mat.NewSymDense(1, []float64{1})
+		RewriteNoise("fuzz.yaml", data, q, q, "note")
+		plant, err := ParsePlant("fuzz.yaml", data)
+		if err != nil {
+			return
+		}
+		qd := plant.Model.Q
+		if plant.Continuous != nil && plant.Continuous.Qc != nil {
+			qd = plant.Continuous.Qc
+		}
+		out, err := RewriteNoise("fuzz.yaml", data, qd, plant.Model.R, "note")
+		if err != nil {
+			if plant.ProcessStd && !isDiagonal(qd) {
+				return
+			}
+			t.Fatalf("a valid plant file could not be rewritten: %v", err)
+		}
+		if _, err := ParsePlant("fuzz.yaml", out); err != nil {
+			// Four significant digits can turn a barely positive
+			// definite covariance into one that is not; anything else is
+			// a bug.
+			if !strings.Contains(err.Error(), "definite") && !strings.Contains(err.Error(), "std") {
+				t.Fatalf("the rewritten plant file does not parse: %v\n%s", err, out)
+			}
+		}
+	})
+}
+
+func isDiagonal(m mat.Symmetric) bool {
+	n := m.SymmetricDim()
+	for i := 0; i < n; i++ {
+		for j := i + 1; j < n; j++ {
+			if m.At(i, j) != 0 {
+				return false
+			}
+		}
+	}
+	return true
 }

@@ -57,6 +57,11 @@ type Plant struct {
 	// a discrete model.
 	Continuous *ContinuousModel
 
+	// ProcessStd and MeasurementStd say the file gave that noise as
+	// standard deviations (key `std`, a diagonal covariance) rather than as
+	// a covariance matrix (key `covariance`).
+	ProcessStd, MeasurementStd bool
+
 	// Inputs and Outputs are the wiring of each input and output, in the
 	// order of the model's columns of B and rows of C.
 	Inputs, Outputs []Wire
@@ -577,7 +582,8 @@ func (r *rawPlant) build(filename string) (*Plant, error) {
 		Ts: ts,
 		R:  r.measurement.matrix(true),
 	}
-	plant := &Plant{Name: r.name, Path: filename, Model: model}
+	plant := &Plant{Name: r.name, Path: filename, Model: model,
+		ProcessStd: r.process.stdNode != nil, MeasurementStd: r.measurement.stdNode != nil}
 	if md.time == "continuous" {
 		cont := &ContinuousModel{A: a, B: b, C: c, D: dd}
 		if r.process.time != "discrete" {

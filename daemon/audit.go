@@ -36,11 +36,14 @@ type AuditEntry struct {
 	// service).
 	Trigger string `json:"trigger"`
 	// Origin is who asked, for control requests: the client the server
-	// vouches for (its Nats-Request-Info header), else the request's reply
-	// subject. ClaimedBy is what the client said about itself (the
-	// Surmise-Operator header); nothing checks it.
-	Origin    string `json:"origin,omitempty"`
-	ClaimedBy string `json:"claimed_by,omitempty"`
+	// vouches for (the Nats-Request-Info header of a request through a
+	// service import; OriginVerified is then true), else the request's
+	// reply subject. ClaimedBy is what the client said about itself (the
+	// Surmise-Operator header, and a Nats-Request-Info header the server
+	// did not write, marked "unverified"); nothing checks it.
+	Origin         string `json:"origin,omitempty"`
+	OriginVerified bool   `json:"origin_verified,omitempty"`
+	ClaimedBy      string `json:"claimed_by,omitempty"`
 	// Source and SHA256 are where the gains of a load came from (a file
 	// name, or "control request") and the SHA-256 of its bytes.
 	Source string `json:"source,omitempty"`

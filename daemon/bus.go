@@ -448,20 +448,41 @@ func authOptions(opts BusOptions) ([]nats.Option, error) {
 // ones in between are counted in the next line.
 const busWarnEvery = 10 * time.Second
 
-// newlyDropped returns how many messages sub dropped since the last call.
+// newlyDropped returns how many messages sub dropped since the last call,
+// and keeps watching it: the client reports a slow consumer once per
+// episode, so the drops that follow are counted by recountDrops.
 func (b *Bus) newlyDropped(sub *nats.Subscription) int {
-	total, err := sub.Dropped()
-	if err != nil {
-		return 0
-	}
 	b.dropMu.Lock()
 	defer b.dropMu.Unlock()
+	total, err := sub.Dropped()
+	if err != nil {
+		delete(b.dropped, sub) // unsubscribed
+		return 0
+	}
 	if b.dropped == nil {
 		b.dropped = map[*nats.Subscription]int{}
 	}
 	n := total - b.dropped[sub]
 	b.dropped[sub] = total
 	return max(n, 0)
+}
+
+// recountDrops counts the drops of every subscription that was once slow.
+func (b *Bus) recountDrops(m *Metrics) {
+	if m == nil {
+		return
+	}
+	b.dropMu.Lock()
+	subs := make([]*nats.Subscription, 0, len(b.dropped))
+	for s := range b.dropped {
+		subs = append(subs, s)
+	}
+	b.dropMu.Unlock()
+	for _, s := range subs {
+		if n := b.newlyDropped(s); n > 0 {
+			m.BusDropped(DropPendingLimit, n)
+		}
+	}
 }
 
 // Conn returns the NATS connection.
@@ -484,6 +505,7 @@ func (b *Bus) probe(m *Metrics) {
 			return
 		case <-t.C:
 		}
+		b.recountDrops(m)
 		if !b.nc.IsConnected() {
 			last = time.Now() // the disconnect handlers report this
 			b.stalled.Store(false)

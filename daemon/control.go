@@ -162,13 +162,21 @@ func respond(req micro.Request, v any, err error) {
 	_ = req.Error(ce.Code, desc, body)
 }
 
-// RequestOrigin says who sent a control request, as far as the bus tells:
-// the client identity in the Nats-Request-Info header when the server added
-// one (on a request that came through a service import from another
-// account; within one account a client could write the header itself, so it
-// is trustworthy only where the deployment routes control requests through
-// an import), else the request's reply subject, which names the requesting
-// connection's inbox. The Surmise-Operator header goes to Claimed.
+// importReplyPrefix begins the reply subject of a request that reached the
+// service through a service import: the server replaces the requester's
+// reply subject with one of its own, under this prefix.
+const importReplyPrefix = "_R_."
+
+// RequestOrigin says who sent a control request, as far as the bus tells.
+//
+// A request that came through a service import from another account has a
+// reply subject the server made (importReplyPrefix) and a Nats-Request-Info
+// header the server wrote, replacing any the client sent: that identity is
+// the origin, Verified. Anywhere else a client can write the header itself,
+// so a header on a request that did not come through an import is only a
+// claim: it goes to Claimed, marked as such, and the origin is the reply
+// subject, which names the requesting connection's inbox. The
+// Surmise-Operator header goes to Claimed too; nothing checks it.
 func RequestOrigin(h micro.Headers, reply string) Origin {
 	o := Origin{Claimed: h.Get(HeaderOperator)}
 	if raw := h.Get(HeaderRequestInfo); raw != "" {
@@ -191,8 +199,16 @@ func RequestOrigin(h micro.Headers, reply string) Origin {
 				parts = append(parts, fmt.Sprintf("cid=%d", ci.ID))
 			}
 			if len(parts) > 0 {
-				o.Who = "request-info: " + strings.Join(parts, " ")
-				return o
+				info := "request-info: " + strings.Join(parts, " ")
+				if strings.HasPrefix(reply, importReplyPrefix) {
+					o.Who, o.Verified = info, true
+					return o
+				}
+				claim := "unverified " + info
+				if o.Claimed != "" {
+					claim = o.Claimed + "; " + claim
+				}
+				o.Claimed = claim
 			}
 		}
 	}
@@ -383,7 +399,7 @@ func (c *Commissioner) Reset(req ResetRequest, who Origin) (*ResetReply, error) 
 	} else {
 		reply.Note = "every lane restarts at the given state (others at the operating point)"
 	}
-	c.record(AuditEntry{Action: "reset", Trigger: TriggerControl, Origin: who.Who, ClaimedBy: who.Claimed,
+	c.record(AuditEntry{Action: "reset", Trigger: TriggerControl, Origin: who.Who, OriginVerified: who.Verified, ClaimedBy: who.Claimed,
 		OldActive: c.active.ref(c.fingerprint), NewActive: c.active.ref(c.fingerprint),
 		OldCandidate: refOrNil(c.cand, c.fingerprint), NewCandidate: refOrNil(c.cand, c.fingerprint),
 		Note: reply.Note + ": " + formatState(md, x)})

@@ -191,7 +191,7 @@ func TestRequestOriginImport(t *testing.T) {
 	if err := os.WriteFile(conf, []byte(`
 listen: 127.0.0.1:-1
 accounts {
-  PLANT { users: [{user: daemon, password: d}], exports: [{service: "surmise.control.>"}] }
+  PLANT { users: [{user: daemon, password: d}, {user: mallory, password: m}], exports: [{service: "surmise.control.>"}] }
   ENG { users: [{user: ann, password: a}], imports: [{service: {account: PLANT, subject: "surmise.control.>"}, share: true}] }
 }
 `), 0o644); err != nil {
@@ -240,6 +240,36 @@ accounts {
 			t.Errorf("origin %q lacks %q", o.Who, w)
 		}
 	}
+	if !o.Verified {
+		t.Errorf("origin %q through the import not verified", o.Who)
+	}
+
+	// Ann writes the header herself, naming someone else: the server
+	// replaces it on the way through the import.
+	forged := &nats.Msg{Subject: ControlSubject("cart", VerbStatus), Header: nats.Header{}}
+	forged.Header.Set(HeaderRequestInfo, `{"acc":"ENG","user":"someone-else"}`)
+	if _, err := ann.RequestMsg(forged, 10*time.Second); err != nil {
+		t.Fatal(err)
+	}
+	if o := <-got; !o.Verified || !strings.Contains(o.Who, "user=ann") || strings.Contains(o.Who, "someone-else") {
+		t.Errorf("a header forged through the import gave origin %+v, want ann, verified", o)
+	}
+
+	// A client of the daemon's own account writes it: a claim, not an
+	// identity.
+	mallory, err := nats.Connect(ns.ClientURL(), nats.UserInfo("mallory", "m"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer mallory.Close()
+	if _, err := mallory.RequestMsg(forged, 10*time.Second); err != nil {
+		t.Fatal(err)
+	}
+	o = <-got
+	if o.Verified || strings.Contains(o.Who, "someone-else") || !strings.HasPrefix(o.Who, "reply-subject: ") ||
+		!strings.Contains(o.Claimed, "unverified request-info: account=ENG user=someone-else") {
+		t.Errorf("a header written in the daemon's account gave origin %+v, want the reply subject and an unverified claim", o)
+	}
 }
 
 func TestRequestOrigin(t *testing.T) {
@@ -250,14 +280,21 @@ func TestRequestOrigin(t *testing.T) {
 	}{
 		{"no header", micro.Headers{}, Origin{Who: "reply-subject: _INBOX.abc"}},
 		{"claimed", micro.Headers{HeaderOperator: {"bob@lab"}}, Origin{Who: "reply-subject: _INBOX.abc", Claimed: "bob@lab"}},
-		{"request info", micro.Headers{HeaderRequestInfo: {`{"acc":"ENG","rtt":1000,"user":"ann","name":"x","host":"10.0.0.7","id":42}`}},
-			Origin{Who: "request-info: account=ENG user=ann client=x host=10.0.0.7 cid=42"}},
+		{"request info written by the client", micro.Headers{HeaderRequestInfo: {`{"acc":"ENG","rtt":1000,"user":"ann","name":"x","host":"10.0.0.7","id":42}`}},
+			Origin{Who: "reply-subject: _INBOX.abc", Claimed: "unverified request-info: account=ENG user=ann client=x host=10.0.0.7 cid=42"}},
+		{"request info and operator written by the client", micro.Headers{HeaderOperator: {"bob@lab"}, HeaderRequestInfo: {`{"acc":"ENG","user":"ann"}`}},
+			Origin{Who: "reply-subject: _INBOX.abc", Claimed: "bob@lab; unverified request-info: account=ENG user=ann"}},
 		{"request info without identity", micro.Headers{HeaderRequestInfo: {`{"rtt":1000}`}}, Origin{Who: "reply-subject: _INBOX.abc"}},
 		{"malformed request info", micro.Headers{HeaderRequestInfo: {`{"acc":`}}, Origin{Who: "reply-subject: _INBOX.abc"}},
 	} {
 		if got := RequestOrigin(c.hdr, "_INBOX.abc"); got != c.want {
 			t.Errorf("%s: %+v, want %+v", c.name, got, c.want)
 		}
+	}
+	// Through an import: the server's reply subject.
+	h := micro.Headers{HeaderRequestInfo: {`{"acc":"ENG","user":"ann"}`}}
+	if got, want := RequestOrigin(h, "_R_.abc.def"), (Origin{Who: "request-info: account=ENG user=ann", Verified: true}); got != want {
+		t.Errorf("through an import: %+v, want %+v", got, want)
 	}
 }
 
@@ -329,7 +366,10 @@ func FuzzRequestOrigin(f *testing.F) {
 		if !strings.HasPrefix(o.Who, "request-info: ") && o.Who != "reply-subject: "+reply {
 			t.Fatalf("origin %q", o.Who)
 		}
-		if o.Claimed != claimed {
+		if o.Verified != strings.HasPrefix(o.Who, "request-info: ") || o.Verified && !strings.HasPrefix(reply, "_R_.") {
+			t.Fatalf("origin %q verified %v with reply %q", o.Who, o.Verified, reply)
+		}
+		if !strings.HasPrefix(o.Claimed, claimed) {
 			t.Fatalf("claimed %q, want %q", o.Claimed, claimed)
 		}
 	})

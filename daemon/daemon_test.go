@@ -549,3 +549,12 @@ func TestNotReadyWithoutSamples(t *testing.T) {
 		return nil
 	})
 }
+
+// publishSample publishes one in-range sample of the plant's first output
+// (the demo plant's tank outlet temperature) on nc.
+func publishSample(t *testing.T, nc *nats.Conn, spec daemon.PlantSpec) {
+	t.Helper()
+	if err := nc.Publish(spec.Plant.Outputs[0].Subject, []byte("61.5")); err != nil && !errors.Is(err, nats.ErrConnectionReconnecting) {
+		t.Fatal(err)
+	}
+}

@@ -538,6 +538,9 @@ func (e *Engine) fill(l *lane, dst *Estimate) {
 		}
 		o.Used = dst.Used.Has(j)
 		o.Outlier = l.out.Outliers.Has(j)
+		ws := l.watch.State(j)
+		o.Bias, o.CUSUM = ws.Bias, max(ws.CUSUMHigh, ws.CUSUMLow)
+		o.Stuck, o.LockedOut, o.Dropout = ws.Stuck, ws.LockedOut, ws.Dropout
 		o.Stale = e.fresh.Has(j) && !e.present.Has(j)
 		o.Age = math.NaN()
 		o.Received = time.Time{}
@@ -593,6 +596,7 @@ type lane struct {
 	gm                 *GainsMetrics // nil without metrics, or sharing another lane's name
 	gmName             string        // the gains label of gm
 	lastNIS            float64       // NIS of the last tick that had one
+	watch              *estimator.SensorWatch
 }
 
 func (e *Engine) newLane(p *estimator.Prepared) *lane {
@@ -605,6 +609,7 @@ func (e *Engine) newLane(p *estimator.Prepared) *lane {
 		r:    make([]float64, e.p),
 		s:    make([]float64, e.p),
 	}
+	l.watch = estimator.NewSensorWatch(e.p, estimator.SensorWatchSettings{})
 	for j := range l.rms {
 		l.rms[j] = newRMSWindow(e.window)
 	}
@@ -625,6 +630,7 @@ func (l *lane) use(p *estimator.Prepared) {
 	l.f.Use(p)
 	l.setPrepared(p)
 	l.win.Reset()
+	l.watch.Reset()
 	for j := range l.rms {
 		l.rms[j].reset()
 	}
@@ -633,6 +639,7 @@ func (l *lane) use(p *estimator.Prepared) {
 func (l *lane) reset(e *Engine) {
 	l.f.Reset(e.x0, e.p0)
 	l.win.Reset()
+	l.watch.Reset()
 	for j := range l.rms {
 		l.rms[j].reset()
 	}
@@ -659,6 +666,13 @@ func (l *lane) step(e *Engine) {
 		if l.out.Used.Has(j) {
 			l.rms[j].add(l.r[j])
 		}
+		// Sensor faults judge the sample against the prediction, an
+		// outlier's too.
+		inn := l.r[j]
+		if math.IsNaN(inn) && e.present.Has(j) {
+			inn = e.y[j] - l.yhat[j]
+		}
+		l.watch.Update(j, e.y[j], inn, math.Sqrt(l.s[j]), l.out.Outliers.Has(j))
 	}
 	l.mean = l.win.Mean()
 	l.lo, l.hi = e.band(l.win)
@@ -833,6 +847,7 @@ func (e *Engine) observe(l *lane, active bool) {
 		if l.out.Outliers.Has(j) {
 			g.Outlier(j)
 		}
+		g.SetSensor(j, l.watch.State(j))
 	}
 	g.SetNIS(l.lastNIS, l.mean, l.outOfBand)
 	g.SetNISBand(l.lo, l.hi)

@@ -64,6 +64,19 @@ type OutputEstimate struct {
 	Outlier       bool    // rejected by the gate
 	Stale         bool    // a sample arrived for this tick but older than max_age
 	Received      time.Time
+
+	// Fault indicators of the sensor (estimator.SensorWatch, over the
+	// lane's own innovations): Bias is +1 (reads high) or −1 (reads low)
+	// while the two-sided CUSUM of the normalised innovation is past its
+	// decision interval, 0 otherwise; CUSUM is the larger of its two
+	// statistics, in standard deviations. Stuck: repeated values, or
+	// innovations far smaller than claimed. LockedOut: the gate refused
+	// the last samples in a row. Dropout: the share of recent ticks
+	// without a fresh sample.
+	Bias             int
+	CUSUM            float64
+	Stuck, LockedOut bool
+	Dropout          float64
 }
 
 // AppendJSON appends the estimate as one JSON object to dst and returns the

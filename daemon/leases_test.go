@@ -60,6 +60,10 @@ func TestOneWriterPerEstimator(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer nc.Close()
+	// A plant feeds both daemons (readiness wants samples).
+	stopFeed, fed := make(chan struct{}), make(chan struct{})
+	go func() { defer close(fed); feed(nc, spec, ts, stopFeed) }()
+	defer func() { close(stopFeed); <-fed }()
 	var mu sync.Mutex
 	seqs := map[uint64]int{}
 	if _, err := nc.Subscribe(daemon.EstimateSubject(spec.Plant), func(m *nats.Msg) {
@@ -120,6 +124,9 @@ func TestOneWriterPerEstimator(t *testing.T) {
 		t.Fatal(err)
 	}
 	checkFor(t, 3*time.Second, 20*time.Millisecond, func() error {
+		// Samples keep arriving, as on a plant: a daemon is ready only once
+		// its engine has had one.
+		publishSample(t, nc, spec)
 		if code, body := readyz(t, third); code != http.StatusOK {
 			return fmt.Errorf("standby not ready after the holder stopped: %d %s", code, body)
 		}

@@ -112,6 +112,20 @@ func TestEmbeddedServerLocked(t *testing.T) {
 		}
 		return nil
 	})
+	// Samples refused with their reasons, from the outside: a payload of a
+	// million bytes, and a time in year 1.
+	out := spec.Plant.Outputs[0]
+	anon.Publish(out.Subject, []byte(strings.Repeat("1", 1_000_000)))
+	anon.Publish(out.Subject, []byte(`{"value": 60, "time": "0001-01-01T00:00:00Z"}`))
+	checkFor(t, 5*time.Second, 20*time.Millisecond, func() error {
+		for _, reason := range []string{"oversize", "time"} {
+			v, _ := gathered(t, r.reg, "surmise_samples_rejected_total", map[string]string{"estimator": spec.Plant.Name, "signal": out.Signal, "reason": reason})
+			if v != 1 {
+				return fmt.Errorf("samples refused as %s: %v, want 1", reason, v)
+			}
+		}
+		return nil
+	})
 	for _, w := range append(spec.Plant.Inputs, spec.Plant.Outputs...) {
 		if anonErrs.has(w.Subject) {
 			t.Errorf("anonymous publish on the wired subject %s refused", w.Subject)

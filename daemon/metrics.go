@@ -7,6 +7,8 @@ import (
 
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/collectors"
+
+	"surmise/estimator"
 )
 
 // Label names (DEVELOPERS.md, "Metric names"): the four bounded dimensions
@@ -60,6 +62,12 @@ type Metrics struct {
 	nisUpper       *prometheus.GaugeVec
 	nisOutOfBand   *prometheus.CounterVec
 	outliers       *prometheus.CounterVec
+	sensorBias     *prometheus.GaugeVec
+	sensorCUSUM    *prometheus.GaugeVec
+	biasAlarms     *prometheus.CounterVec
+	sensorStuck    *prometheus.GaugeVec
+	lockedOut      *prometheus.GaugeVec
+	dropout        *prometheus.GaugeVec
 	measurementAge *prometheus.GaugeVec
 	received       *prometheus.CounterVec
 	rejected       *prometheus.CounterVec
@@ -125,6 +133,18 @@ func NewMetricsLevel(reg prometheus.Registerer, level MetricsLevel) *Metrics {
 			"Ticks whose windowed mean NIS was outside its band.", labelEstimator, labelGains),
 		outliers: counter("surmise_outliers_total",
 			"Measurements rejected by the NIS gate.", labelEstimator, labelGains, labelOutput),
+		sensorBias: gauge("surmise_sensor_bias",
+			"+1 while the CUSUM of the output's normalised innovation signals that the sensor reads high against the model, -1 low, 0 otherwise.", labelEstimator, labelGains, labelOutput),
+		sensorCUSUM: gauge("surmise_sensor_cusum",
+			"The larger of the two-sided CUSUM statistics of the output's normalised innovation, in standard deviations (alarm above 10).", labelEstimator, labelGains, labelOutput),
+		biasAlarms: counter("surmise_sensor_bias_alarms_total",
+			"Bias alarms raised by the CUSUM of the output's normalised innovation.", labelEstimator, labelGains, labelOutput),
+		sensorStuck: gauge("surmise_sensor_stuck",
+			"1 while the sensor repeats its value or its innovations are far smaller than claimed.", labelEstimator, labelGains, labelOutput),
+		lockedOut: gauge("surmise_sensor_locked_out",
+			"1 while the NIS gate has refused the output's last samples in a row.", labelEstimator, labelGains, labelOutput),
+		dropout: gauge("surmise_sensor_dropout_ratio",
+			"Share of the last 100 ticks without a fresh sample of the output.", labelEstimator, labelGains, labelOutput),
 		measurementAge: gauge("surmise_measurement_age_seconds",
 			"Age of the newest measurement of an output at the latest tick.", labelEstimator, labelOutput),
 		received: counter("surmise_samples_received_total",
@@ -152,18 +172,19 @@ func NewMetricsLevel(reg prometheus.Registerer, level MetricsLevel) *Metrics {
 		busDropped: prometheus.NewCounterVec(prometheus.CounterOpts{Name: "surmise_bus_dropped_total",
 			Help: "Messages dropped on the bus, by reason: pending-limit (a subscription's backlog was full), oversize (a publish larger than the server allows)."}, []string{labelReason}),
 	}
-	for _, v := range []*prometheus.CounterVec{m.ticks, m.overruns, m.nisOutOfBand, m.outliers, m.received, m.rejected, m.reloads} {
+	for _, v := range []*prometheus.CounterVec{m.ticks, m.overruns, m.nisOutOfBand, m.outliers, m.biasAlarms, m.received, m.rejected, m.reloads} {
 		m.vecs = append(m.vecs, v.MetricVec)
 	}
 	for _, v := range []*prometheus.GaugeVec{m.status, m.innovation, m.innovationRMS, m.nis, m.nisMean, m.nisLower,
-		m.nisUpper, m.measurementAge, m.state, m.stateStddev, m.gainsInfo, m.lastReload, m.ready} {
+		m.nisUpper, m.sensorBias, m.sensorCUSUM, m.sensorStuck, m.lockedOut, m.dropout, m.measurementAge, m.state, m.stateStddev, m.gainsInfo, m.lastReload, m.ready} {
 		m.vecs = append(m.vecs, v.MetricVec)
 	}
 	for _, v := range []*prometheus.HistogramVec{m.compute, m.lateness, m.sampleToEst} {
 		m.vecs = append(m.vecs, v.MetricVec)
 	}
 	reg.MustRegister(m.ticks, m.overruns, m.compute, m.lateness, m.status, m.innovation, m.innovationRMS,
-		m.nis, m.nisMean, m.nisLower, m.nisUpper, m.nisOutOfBand, m.outliers, m.measurementAge, m.received,
+		m.nis, m.nisMean, m.nisLower, m.nisUpper, m.nisOutOfBand, m.outliers, m.sensorBias, m.sensorCUSUM,
+		m.biasAlarms, m.sensorStuck, m.lockedOut, m.dropout, m.measurementAge, m.received,
 		m.rejected, m.state, m.stateStddev, m.gainsInfo, m.reloads, m.lastReload, m.sampleToEst, m.ready,
 		m.busConnected, m.busDisconnects, m.busDropped)
 	for _, r := range []string{DropPendingLimit, DropOversize} {
@@ -370,6 +391,9 @@ type GainsMetrics struct {
 	gains                            string
 	innovation, innovationRMS        []prometheus.Gauge
 	outliers                         []prometheus.Counter
+	bias, cusum, stuck, locked, drop []prometheus.Gauge
+	biasAlarms                       []prometheus.Counter
+	alarmsSeen                       []int
 	nis, nisMean, nisLower, nisUpper prometheus.Gauge
 	nisOutOfBand                     prometheus.Counter
 	state, stateStddev               []prometheus.Gauge
@@ -406,6 +430,13 @@ func (e *EstimatorMetrics) Gains(gains string) *GainsMetrics {
 		} else {
 			g.outliers = append(g.outliers, m.outliers.WithLabelValues("", "", ""))
 		}
+		g.bias = append(g.bias, m.sensorBias.WithLabelValues(e.name, gains, o))
+		g.cusum = append(g.cusum, m.sensorCUSUM.WithLabelValues(e.name, gains, o))
+		g.stuck = append(g.stuck, m.sensorStuck.WithLabelValues(e.name, gains, o))
+		g.locked = append(g.locked, m.lockedOut.WithLabelValues(e.name, gains, o))
+		g.drop = append(g.drop, m.dropout.WithLabelValues(e.name, gains, o))
+		g.biasAlarms = append(g.biasAlarms, m.biasAlarms.WithLabelValues(e.name, gains, o))
+		g.alarmsSeen = append(g.alarmsSeen, 0)
 	}
 	for _, s := range e.states {
 		g.state = append(g.state, detail(m.state, e.name, gains, s))
@@ -419,6 +450,20 @@ func (e *EstimatorMetrics) Gains(gains string) *GainsMetrics {
 func (g *GainsMetrics) SetInnovation(i int, r, rms float64) {
 	g.innovation[i].Set(r)
 	g.innovationRMS[i].Set(rms)
+}
+
+// SetSensor sets the fault indicators of output i from its sensor watch;
+// the bias-alarm counter advances by the alarms raised since the last call.
+func (g *GainsMetrics) SetSensor(i int, st *estimator.SensorState) {
+	g.bias[i].Set(float64(st.Bias))
+	g.cusum[i].Set(max(st.CUSUMHigh, st.CUSUMLow))
+	g.stuck[i].Set(b2f(st.Stuck))
+	g.locked[i].Set(b2f(st.LockedOut))
+	g.drop[i].Set(st.Dropout)
+	if d := st.BiasAlarms - g.alarmsSeen[i]; d > 0 {
+		g.biasAlarms[i].Add(float64(d))
+	}
+	g.alarmsSeen[i] = st.BiasAlarms
 }
 
 // Outlier counts a measurement of output i rejected by the NIS gate.

@@ -17,7 +17,9 @@ const (
 	// MetricsSummary keeps, per estimator, only what says whether it is
 	// healthy: surmise_status, surmise_ready, surmise_tick_overruns_total,
 	// the windowed mean NIS with its band and out-of-band count,
-	// surmise_gains_info and the reload results (15 series). The
+	// surmise_gains_info and the reload results (15 series), and the
+	// sensor-health series of each output (bias, CUSUM, stuck, locked out,
+	// drop-out, bias alarms), which the alert rules use. The
 	// timing histograms, surmise_ticks_total and the sample and outlier
 	// counters are kept for the whole process, with the estimator label
 	// (and the signal and output labels) empty; innovations, states,

@@ -2,6 +2,8 @@ package daemon_test
 
 import (
 	"context"
+	"encoding/json"
+	"math"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -311,6 +313,34 @@ func TestPageInBrowser(t *testing.T) {
 	}
 	if s := eval(`document.getElementById("outputs-table").innerText`); !strings.Contains(s, "tank_outlet") || !strings.Contains(s, "hx_outlet") {
 		t.Errorf("outputs table:\n%s", s)
+	}
+	// Each output's sensor indicators and its Ljung–Box whiteness over the
+	// window, once the window holds enough innovations.
+	poll("the outputs table judges each sensor and its whiteness",
+		`[...document.querySelectorAll("#outputs-table tbody tr")].every(r => /^(ok|bias|stuck|locked)/.test(r.cells[8].textContent) && /white \(p /.test(r.cells[9].textContent))`)
+	// The page's Ljung–Box statistic and p-value on the committed series
+	// agree with numpy and scipy.stats.chi2.sf (SOURCES.md: ljung-box).
+	var lbRef struct {
+		LjungBox []struct {
+			Name   string
+			Series []float64
+			Q, P   float64
+		} `json:"ljung_box"`
+	}
+	if raw, err := os.ReadFile(filepath.Join("..", "testdata", "reference", "commissioning.json")); err != nil {
+		t.Fatal(err)
+	} else if err := json.Unmarshal(raw, &lbRef); err != nil {
+		t.Fatal(err)
+	}
+	for _, c := range lbRef.LjungBox {
+		series, _ := json.Marshal(c.Series)
+		var got struct{ Q, P float64 }
+		if err := json.Unmarshal([]byte(eval(`JSON.stringify(window.surmiseStats.ljungBox(`+string(series)+`, 10))`)), &got); err != nil {
+			t.Fatalf("%s: %v", c.Name, err)
+		}
+		if math.Abs(got.Q-c.Q) > 1e-9*c.Q || math.Abs(got.P-c.P) > 1e-9*math.Max(c.P, 1e-6) {
+			t.Errorf("%s: the page's Ljung–Box Q, p = %v, %v; scipy %v, %v", c.Name, got.Q, got.P, c.Q, c.P)
+		}
 	}
 
 	// 2. Pause freezes the view while updates keep arriving; resume

@@ -86,7 +86,9 @@ func (st *pageStream) empty(pe *pageEst) []byte {
 //	          "out": [[predicted, innovation, innovation_std, flags], …],
 //	          "x": [[value, std], …]}}
 //
-// flags: 1 used, 2 rejected by the gate, 4 stale.
+// flags: 1 used, 2 rejected by the gate, 4 stale; for the active lane's
+// outputs also the sensor watch's 8 bias reading high, 16 bias reading
+// low, 32 stuck, 64 locked out by the gate.
 func (pe *pageEst) appendRow(b []byte, r *pageRow, v []float64) []byte {
 	b = append(b, `{"seq":`...)
 	b = strconv.AppendUint(b, r.seq, 10)
@@ -116,7 +118,7 @@ func (pe *pageEst) appendRow(b []byte, r *pageRow, v []float64) []byte {
 			b = appendFloat(b, v[k+q])
 			b = append(b, ',')
 		}
-		b = strconv.AppendInt(b, int64(flags(r.used, r.out, r.stale, j)), 10)
+		b = strconv.AppendInt(b, int64(flags(r.used, r.out, r.stale, j)|sensorFlags(r, j)), 10)
 		b = append(b, ']')
 		k += outVals
 	}
@@ -194,6 +196,20 @@ func appendPairs(b []byte, v []float64, k, count int) ([]byte, int) {
 		k += 2
 	}
 	return append(b, ']'), k
+}
+
+// sensorFlags returns the sensor-watch bits of output j of a row.
+func sensorFlags(r *pageRow, j int) int {
+	f := 0
+	for _, b := range []struct {
+		p   estimator.Pattern
+		bit int
+	}{{r.biasHi, 8}, {r.biasLo, 16}, {r.stuck, 32}, {r.locked, 64}} {
+		if b.p.Has(j) {
+			f |= b.bit
+		}
+	}
+	return f
 }
 
 func flags(used, out, stale estimator.Pattern, j int) int {

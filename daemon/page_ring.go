@@ -21,6 +21,9 @@ type pageRow struct {
 	noGain            bool
 	inStale           uint64 // bit i: input i stale
 	used, out, stale  estimator.Pattern
+	// The sensor watch's indicators of the active lane, per output bit:
+	// bias reading high or low, stuck, locked out by the gate.
+	biasHi, biasLo, stuck, locked estimator.Pattern
 
 	cand                  bool
 	cGains                string
@@ -124,6 +127,22 @@ func (pe *pageEst) record(est, cand *Estimate, tt TickTiming) bool {
 		noGain: est.NoGain, used: est.Used, out: pe.pendOut, stale: pe.pendStale,
 	}
 	pe.pendOut, pe.pendStale = 0, 0
+	for j := range est.Outputs {
+		o := &est.Outputs[j]
+		bit := estimator.Pattern(1) << uint(j)
+		switch o.Bias {
+		case 1:
+			r.biasHi |= bit
+		case -1:
+			r.biasLo |= bit
+		}
+		if o.Stuck {
+			r.stuck |= bit
+		}
+		if o.LockedOut {
+			r.locked |= bit
+		}
+	}
 	k := 0
 	for j := 0; j < pe.p; j++ {
 		o := outputAt(est, j)

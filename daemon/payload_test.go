@@ -115,6 +115,7 @@ func TestReasonString(t *testing.T) {
 	want := map[Reason]string{
 		ReasonNaN: "nan", ReasonRange: "range", ReasonParse: "parse",
 		ReasonLate: "late", ReasonStale: "stale", ReasonUnknown: "unknown",
+		ReasonOversize: "oversize", ReasonTime: "time",
 	}
 	if len(want) != int(numReasons) {
 		t.Fatalf("%d reasons defined, the table names %d", numReasons, len(want))

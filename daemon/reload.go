@@ -80,6 +80,9 @@ type Origin struct {
 	Who string
 	// Claimed is what the requester said about itself; nothing checks it.
 	Claimed string
+	// Verified says that Who is an identity the server vouched for (a
+	// request through a service import).
+	Verified bool
 }
 
 // CommissionerOptions configures a Commissioner.
@@ -452,7 +455,7 @@ func (c *Commissioner) load(data []byte, source string, sel Selection, trigger s
 	}
 	c.accepted(trigger, source, reply.Note)
 	c.record(AuditEntry{
-		Action: "load", Trigger: trigger, Origin: who.Who, ClaimedBy: who.Claimed,
+		Action: "load", Trigger: trigger, Origin: who.Who, OriginVerified: who.Verified, ClaimedBy: who.Claimed,
 		Source: source, SHA256: sum,
 		OldActive: oldAct.ref(c.fingerprint), NewActive: act.ref(c.fingerprint),
 		OldCandidate: refOrNil(oldCand, c.fingerprint), NewCandidate: refOrNil(cand, c.fingerprint),

@@ -246,7 +246,7 @@ func (c *Commissioner) Promote(req PromoteRequest, who Origin) (*PromoteReply, e
 	} else {
 		reply.Note = fmt.Sprintf("%s promoted, state carried over; shadow stopped; rollback returns %s", c.active.named.Set.Name, old.named.Set.Name)
 	}
-	e := AuditEntry{Action: "promote", Trigger: TriggerControl, Origin: who.Who, ClaimedBy: who.Claimed,
+	e := AuditEntry{Action: "promote", Trigger: TriggerControl, Origin: who.Who, OriginVerified: who.Verified, ClaimedBy: who.Claimed,
 		OldActive: old.ref(c.fingerprint), NewActive: c.active.ref(c.fingerprint),
 		OldCandidate: refOrNil(c.active, c.fingerprint), Transfer: string(tr), Note: reply.Note}
 	if reply.Jump != nil {
@@ -325,7 +325,7 @@ func (c *Commissioner) Rollback(who Origin) (*RollbackReply, error) {
 	c.lastSwap = c.now()
 	reply := &RollbackReply{Active: back.ref(c.fingerprint), Previous: old.ref(c.fingerprint),
 		Note: fmt.Sprintf("%s is active again, state carried over; rollback again returns %s", back.named.Set.Name, old.named.Set.Name)}
-	c.record(AuditEntry{Action: "rollback", Trigger: TriggerControl, Origin: who.Who, ClaimedBy: who.Claimed,
+	c.record(AuditEntry{Action: "rollback", Trigger: TriggerControl, Origin: who.Who, OriginVerified: who.Verified, ClaimedBy: who.Claimed,
 		OldActive: old.ref(c.fingerprint), NewActive: back.ref(c.fingerprint),
 		OldCandidate: refOrNil(oldCand, c.fingerprint), NewCandidate: refOrNil(c.cand, c.fingerprint), Note: reply.Note})
 	c.log.Info("gains rolled back", "estimator", c.name, "set", back.named.Set.Name, "replaced", old.named.Set.Name, "origin", who.Who)

@@ -98,6 +98,9 @@ func TestStalledServer(t *testing.T) {
 	}); err != nil {
 		t.Fatal(err)
 	}
+	stopFeed, fed := make(chan struct{}), make(chan struct{})
+	go func() { defer close(fed); feed(nc, spec, ts, stopFeed) }()
+	defer func() { close(stopFeed); <-fed }()
 	checkFor(t, 10*time.Second, 20*time.Millisecond, func() error {
 		if len(got.since(time.Time{})) < 5 {
 			return errors.New("no estimates on the bus yet")
@@ -143,6 +146,9 @@ func TestStalledServer(t *testing.T) {
 		t.Fatal(err)
 	}
 	checkFor(t, 10*time.Second, 20*time.Millisecond, func() error {
+		// Samples keep arriving, as on a plant: a daemon is ready only once
+		// its engine has had one.
+		publishSample(t, nc, spec)
 		if code, body := readyz(t, r); code != http.StatusOK {
 			return fmt.Errorf("/readyz %d %s after SIGCONT", code, body)
 		}

@@ -30,7 +30,9 @@ import (
 
 	"golang.org/x/crypto/bcrypt"
 	"gopkg.in/yaml.v3"
-	surmised "surmise/daemon"
+
+	surmise "surmise/daemon"
+	"surmise/daemon/lease"
 )
 
 // The NATS files name the paths of a real installation (/etc/nats/…, /var/lib/nats/…) and hold
@@ -53,6 +55,7 @@ func placeholderHash(user string) string {
 // Test passwords of the users that log in with one; never used outside these tests.
 var natsPasswords = map[string]string{
 	"engineer":     "engineer-test-password",
+	"gains-admin":  "gains-admin-test-password",
 	"dashboard":    "dashboard-test-password",
 	"plant-bridge": "bridge-test-password",
 	"admin":        "admin-test-password",
@@ -253,7 +256,7 @@ func TestNATSConfigs(t *testing.T) {
 			}
 		}
 		slices.Sort(users)
-		if want := []string{"admin", "dashboard", "engineer", "plant-bridge"}; !slices.Equal(users, want) {
+		if want := []string{"admin", "dashboard", "engineer", "gains-admin", "plant-bridge"}; !slices.Equal(users, want) {
 			t.Errorf("nats-%d.conf: users %v, want %v", n, users, want)
 		}
 		if len(opts.Nkeys) != 1 || opts.Nkeys[0].Nkey != s.daemonPub {
@@ -461,6 +464,7 @@ func TestNATSPermissions(t *testing.T) {
 	pw := func(user string) nats.Option { return nats.UserInfo(user, natsPasswords[user]) }
 	daemon := mustConnect("daemon", nats.Nkey(s.daemonPub, s.daemon.Sign))
 	engineer := mustConnect("engineer", pw("engineer"))
+	gainsAdmin := mustConnect("gains-admin", pw("gains-admin"))
 	dashboard := mustConnect("dashboard", pw("dashboard"))
 	bridge := mustConnect("plant-bridge", pw("plant-bridge"))
 
@@ -533,18 +537,38 @@ func TestNATSPermissions(t *testing.T) {
 		t.Cleanup(func() { _ = svc.Stop() })
 		group := svc.AddGroup("surmise.control." + name)
 		verbs := []string{"status", "load", "promote", "rollback", "reset"}
+		origins := make(chan surmise.Origin, len(verbs)+1)
 		for _, v := range verbs {
-			if err := group.AddEndpoint(v, micro.HandlerFunc(func(r micro.Request) { _ = r.Respond([]byte(v)) })); err != nil {
+			if err := group.AddEndpoint(v, micro.HandlerFunc(func(r micro.Request) {
+				select {
+				case origins <- surmise.RequestOrigin(r.Headers(), r.Reply()):
+				default:
+				}
+				_ = r.Respond([]byte(v))
+			})); err != nil {
 				t.Fatal(err)
 			}
 		}
 		daemon.noViolations(t, "daemon")
 		for _, v := range verbs {
-			m, err := engineer.Request(control+v, nil, 5*time.Second)
+			// The engineer writes an identity of its own: the server replaces it on the
+			// way through the import.
+			req := &nats.Msg{Subject: control + v, Header: nats.Header{}}
+			req.Header.Set(surmise.HeaderRequestInfo, `{"acc":"SURMISE","user":"someone-else"}`)
+			m, err := engineer.RequestMsg(req, 5*time.Second)
 			if err != nil || string(m.Data) != v {
 				t.Errorf("engineer %s: %v", control+v, err)
+				continue
+			}
+			if o := <-origins; !o.Verified || !strings.Contains(o.Who, "account=ENGINEERS user=engineer") || strings.Contains(o.Who, "someone-else") {
+				t.Errorf("engineer %s: the daemon sees origin %+v, want the engineer, verified", v, o)
 			}
 		}
+		// Within the daemons' account nobody may call a verb that changes anything.
+		if err := gainsAdmin.Publish(control+"reset", nil); err != nil {
+			t.Fatal(err)
+		}
+		gainsAdmin.expectViolation(t, "Publish", control+"reset")
 		for _, who := range []*client{engineer, dashboard} {
 			for _, subj := range []string{"$SRV.PING", "$SRV.INFO.surmise", "$SRV.STATS.surmise"} {
 				if _, err := who.Request(subj, nil, 5*time.Second); err != nil {
@@ -554,6 +578,8 @@ func TestNATSPermissions(t *testing.T) {
 		}
 		if m, err := dashboard.Request(control+"status", nil, 5*time.Second); err != nil || string(m.Data) != "status" {
 			t.Errorf("dashboard status: %v", err)
+		} else if o := <-origins; o.Verified {
+			t.Errorf("a status request from the daemons' own account verified: %+v", o)
 		}
 		engineer.noViolations(t, "engineer")
 		dashboard.noViolations(t, "dashboard")
@@ -590,19 +616,39 @@ func TestNATSPermissions(t *testing.T) {
 		bridge.expectViolation(t, "Subscription", "pilot.>")
 	})
 
+	t.Run("the daemons' leases", func(t *testing.T) {
+		ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
+		defer cancel()
+		m, err := lease.Open(ctx, daemon.Conn, lease.Config{Bucket: surmise.DefaultLeaseBucket})
+		if err != nil {
+			t.Fatalf("daemon: the lease bucket: %v (server errors: %v)", err, daemon.pending())
+		}
+		l, err := m.Acquire(ctx, name)
+		if err != nil {
+			t.Fatalf("daemon: taking a lease: %v (server errors: %v)", err, daemon.pending())
+		}
+		if err := l.Release(ctx); err != nil {
+			t.Errorf("daemon: releasing a lease: %v", err)
+		}
+		if err := m.Close(ctx); err != nil {
+			t.Error(err)
+		}
+		daemon.noViolations(t, "daemon")
+	})
+
 	t.Run("gains through the key-value bucket", func(t *testing.T) {
 		ctx, cancel := context.WithTimeout(context.Background(), 20*time.Second)
 		defer cancel()
-		ejs, err := jetstream.New(engineer.Conn)
+		ejs, err := jetstream.New(gainsAdmin.Conn)
 		if err != nil {
 			t.Fatal(err)
 		}
 		ekv, err := ejs.CreateKeyValue(ctx, jetstream.KeyValueConfig{Bucket: "surmise-gains", History: 10})
 		if err != nil {
-			t.Fatalf("engineer: creating the bucket: %v", err)
+			t.Fatalf("gains-admin: creating the bucket: %v", err)
 		}
 		if _, err := ekv.Put(ctx, name, []byte("gains v1")); err != nil {
-			t.Fatalf("engineer: put: %v", err)
+			t.Fatalf("gains-admin: put: %v", err)
 		}
 
 		djs, err := jetstream.New(daemon.Conn)
@@ -648,10 +694,10 @@ func TestNATSPermissions(t *testing.T) {
 			t.Fatalf("daemon: put: %v", err)
 		}
 		if e, err := ekv.Get(ctx, name); err != nil || string(e.Value()) != "gains v3" {
-			t.Errorf("engineer: get after the daemon's put: %v", err)
+			t.Errorf("gains-admin: get after the daemon's put: %v", err)
 		}
 		daemon.noViolations(t, "daemon")
-		engineer.noViolations(t, "engineer")
+		gainsAdmin.noViolations(t, "gains-admin")
 
 		for _, subj := range []string{"$KV.surmise-gains." + name, "$JS.API.STREAM.INFO.KV_surmise-gains"} {
 			if err := dashboard.Publish(subj, []byte("x")); err != nil {
@@ -664,7 +710,7 @@ func TestNATSPermissions(t *testing.T) {
 	t.Run("a fleet: the engineer puts a plant, a fleet daemon runs it", func(t *testing.T) {
 		ctx, cancel := context.WithTimeout(context.Background(), 20*time.Second)
 		defer cancel()
-		store, err := surmised.OpenFleet(ctx, engineer.Conn, "site", 0, 0)
+		store, err := surmise.OpenFleet(ctx, engineer.Conn, "site", 0, 0)
 		if err != nil {
 			t.Fatalf("engineer: opening the fleet: %v (server errors: %v)", err, engineer.pending())
 		}
@@ -683,9 +729,9 @@ func TestNATSPermissions(t *testing.T) {
 		if err := os.WriteFile(seedFile, seed, 0o600); err != nil {
 			t.Fatal(err)
 		}
-		d, err := surmised.New(surmised.Options{
-			Bus:   surmised.BusOptions{URL: url, NKeyFile: seedFile, TLSCA: s.ca, TLSCert: s.cert, TLSKey: s.key},
-			Fleet: &surmised.FleetOptions{Name: "site", CheckpointEvery: 200 * time.Millisecond}, Instance: "pod-1",
+		d, err := surmise.New(surmise.Options{
+			Bus:   surmise.BusOptions{URL: url, NKeyFile: seedFile, TLSCA: s.ca, TLSCert: s.cert, TLSKey: s.key},
+			Fleet: &surmise.FleetOptions{Name: "site", CheckpointEvery: 200 * time.Millisecond}, Instance: "pod-1",
 			Listen: "127.0.0.1:0", Notify: func(string) error { return nil },
 			Logger: slog.New(slog.NewTextHandler(&log, nil)),
 		})
@@ -732,7 +778,7 @@ func TestNATSPermissions(t *testing.T) {
 		}
 		dctx2, cancel2 := context.WithTimeout(ctx, 2*time.Second)
 		defer cancel2()
-		if _, err := surmised.OpenFleet(dctx2, dashboard.Conn, "site", 0, 0); err == nil {
+		if _, err := surmise.OpenFleet(dctx2, dashboard.Conn, "site", 0, 0); err == nil {
 			t.Error("the dashboard opened the fleet's buckets")
 		}
 	})
@@ -753,24 +799,24 @@ func TestNATSPermissions(t *testing.T) {
 			}
 		}
 		bridge.noViolations(t, "plant-bridge")
-		ejs, err := jetstream.New(engineer.Conn)
+		ejs, err := jetstream.New(gainsAdmin.Conn)
 		if err != nil {
 			t.Fatal(err)
 		}
 		cons, err := ejs.OrderedConsumer(ctx, "SURMISE_RECORDINGS", jetstream.OrderedConsumerConfig{})
 		if err != nil {
-			t.Fatalf("engineer: replaying the recordings: %v", err)
+			t.Fatalf("gains-admin: replaying the recordings: %v", err)
 		}
 		for i, subj := range samples {
 			m, err := cons.Next(jetstream.FetchMaxWait(5 * time.Second))
 			if err != nil {
-				t.Fatalf("engineer: recording %d: %v (server errors: %v)", i, err, engineer.pending())
+				t.Fatalf("gains-admin: recording %d: %v (server errors: %v)", i, err, gainsAdmin.pending())
 			}
 			if m.Subject() != subj || string(m.Data()) != fmt.Sprint(60+i) {
-				t.Errorf("engineer: recording %d is %s %q, want %s %q", i, m.Subject(), m.Data(), subj, fmt.Sprint(60+i))
+				t.Errorf("gains-admin: recording %d is %s %q, want %s %q", i, m.Subject(), m.Data(), subj, fmt.Sprint(60+i))
 			}
 		}
 		daemon.noViolations(t, "daemon")
-		engineer.noViolations(t, "engineer")
+		gainsAdmin.noViolations(t, "gains-admin")
 	})
 }

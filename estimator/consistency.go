@@ -156,8 +156,8 @@ func (w *NISWindow) Inside(prob float64) bool {
 //
 //	ρ(j) = Σ_t (r_t − r̄)(r_{t+j} − r̄) / Σ_t (r_t − r̄)²
 //
-// and returns dst. The innovations of an optimal filter are white, so their
-// ρ(j) stay within ±WhitenessBound(len(r)) for about 95% of the lags.
+// and returns dst. The innovations of an optimal filter are white: LjungBox
+// turns ρ into a test of that.
 // It panics if len(dst) ≥ len(r). A constant sequence gives NaNs.
 func Autocorrelation(dst []float64, r []float64) []float64 {
 	if len(dst) >= len(r) {
@@ -182,31 +182,4 @@ func Autocorrelation(dst []float64, r []float64) []float64 {
 		dst[j] = s / c0
 	}
 	return dst
-}
-
-// WhitenessBound returns 1.96/√n, the 95% bound on the sample
-// autocorrelation of n values of a white sequence at any nonzero lag
-// (Mehra, On the identification of variances and adaptive Kalman
-// filtering, IEEE TAC 15(2), 1970; cited from memory).
-func WhitenessBound(n int) float64 {
-	return 1.96 / math.Sqrt(float64(n))
-}
-
-// WhiteFraction returns the fraction of the autocorrelations rho, computed
-// from n values, that lie inside ±WhitenessBound(n). For white innovations
-// it is about 0.95; markedly less says the filter leaves structure in its
-// innovations (a wrong model, or a gain far from optimal).
-// It returns NaN for an empty rho.
-func WhiteFraction(rho []float64, n int) float64 {
-	if len(rho) == 0 {
-		return math.NaN()
-	}
-	b := WhitenessBound(n)
-	in := 0
-	for _, v := range rho {
-		if math.Abs(v) <= b {
-			in++
-		}
-	}
-	return float64(in) / float64(len(rho))
 }

@@ -20,6 +20,9 @@
 //     for the error covariance of any stabilising fixed gain.
 //   - [DesignPlaced] and [DesignKalman]: a whole [GainSet], with a gain per
 //     pattern of available outputs when asked.
+//   - [IdentifyNoise]: the process and measurement noise covariances from
+//     the innovations of a fixed-gain filter, by autocovariance least
+//     squares.
 //
 // Run time, allocation-free after construction:
 //   - [Prepare] checks a [GainSet] against a [Model] once and compiles it
@@ -29,7 +32,11 @@
 //     prediction form (error dynamics A − L·C), the current form
 //     (A − L·C·A) and the time-varying Kalman filter (Joseph form);
 //     [Filter.Use] swaps gain sets between ticks with the state carried over;
-//   - [NISWindow], [MeanNISBand], [Autocorrelation]: consistency statistics;
+//   - [NISWindow], [MeanNISBand], [Autocorrelation], [LjungBox]: consistency
+//     statistics;
+//   - [SensorWatch]: per-output fault indicators (a two-sided CUSUM of the
+//     normalised innovation for a bias, a stuck sensor, drop-outs, gate
+//     lock-out);
 //   - [NewPlant]: a seeded simulation of a model for tests and demos.
 //
 // # Invariants
@@ -38,8 +45,9 @@
 // changes them after they are built, and callers must not either, so one
 // Prepared set may serve many filters. Data changes only in a receiver
 // ([Filter], [NISWindow], [Plant]) or in a dst argument of a method whose
-// name ends in To. Filter.Step, its read-outs, Filter.Use, NISWindow.Add and
-// Plant.Step allocate nothing; tests assert it with testing.AllocsPerRun.
+// name ends in To. Filter.Step, its read-outs, Filter.Use, NISWindow.Add,
+// SensorWatch.Update and Plant.Step allocate nothing; tests assert it with
+// testing.AllocsPerRun.
 //
 // # Units
 //

@@ -38,6 +38,7 @@ func verbs() []verb {
 		{"fleet", "put, list, show and remove the plants of a fleet in its JetStream bucket", runFleet},
 		{"demo", "run the whole tool on an invented pilot plant, with no other service", runDemo},
 		{"design", "design observer or Kalman gains and write the gains file", runDesign},
+		{"noise", "estimate the process and measurement noise from a recording (autocovariance least squares)", runNoise},
 		{"record", "write bus traffic to a recording file (or a JetStream stream) for replay", runRecord},
 		{"replay", "run the tick engine on a recording and compare gain sets", runReplay},
 		{"run", "run the estimators of plant files on the NATS bus (the daemon)", runRun},

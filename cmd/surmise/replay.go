@@ -5,6 +5,7 @@ import (
 	"bytes"
 	"context"
 	"errors"
+	"flag"
 	"fmt"
 	"io"
 	"os"
@@ -65,10 +66,7 @@ func runReplay(_ context.Context, e *env, args []string) error {
 	fs.Var(&f.gains, "gains", "gains `FILE` or FILE:SET to run (repeat for several; default: the plant's active and candidate sets)")
 	fs.StringVar(&f.outCSV, "out-csv", "", "write the estimates to `FILE` as CSV")
 	fs.StringVar(&f.reportPath, "report", "", "write the HTML report to `FILE`")
-	fs.StringVar(&f.tz, "tz", "", "time `ZONE` of CSV times written without one, such as Europe/Berlin")
-	fs.StringVar(&f.timeColumn, "time-column", "", "CSV time column `NAME` (default: the first column)")
-	fs.StringVar(&f.delimiter, "delimiter", ",", "CSV field `DELIMITER`")
-	fs.BoolVar(&f.decimalComma, "decimal-comma", false, "CSV numbers use a decimal comma (needs another --delimiter)")
+	csvFlags(fs, &f)
 	fs.StringVar(&f.start, "start", "", "`TIME` of the first tick, RFC 3339 (default: chosen from the recording as described above)")
 	fs.StringVar(&f.end, "end", "", "`TIME` at or after which the last tick falls, RFC 3339 (default: the last sample's)")
 	fs.BoolVar(&f.allIssues, "all-issues", false, "print every issue of the recording, not only the first 100")
@@ -139,7 +137,7 @@ func runReplay(_ context.Context, e *env, args []string) error {
 	rows := make([]report.TickRow, len(runs))
 	for i := range rows {
 		rows[i] = report.TickRow{States: make([]float64, n), StateStd: make([]float64, n),
-			Innovations: make([]float64, p), InnovationStd: make([]float64, p)}
+			Innovations: make([]float64, p), InnovationStd: make([]float64, p), Faults: make([]uint8, p)}
 	}
 	res, err := daemon.Replay(plant, sets, src, daemon.ReplayOptions{
 		Start: start, End: end,
@@ -260,6 +258,14 @@ func replayGainSets(plant *config.Plant, flags []string) ([]replayRun, error) {
 		}
 	}
 	return runs, nil
+}
+
+// csvFlags registers the flags that say how to read a CSV recording.
+func csvFlags(fs *flag.FlagSet, f *replayFlags) {
+	fs.StringVar(&f.tz, "tz", "", "time `ZONE` of CSV times written without one, such as Europe/Berlin")
+	fs.StringVar(&f.timeColumn, "time-column", "", "CSV time column `NAME` (default: the first column)")
+	fs.StringVar(&f.delimiter, "delimiter", ",", "CSV field `DELIMITER`")
+	fs.BoolVar(&f.decimalComma, "decimal-comma", false, "CSV numbers use a decimal comma (needs another --delimiter)")
 }
 
 // readRecording reads --data, a CSV or a bus recording (told apart by the

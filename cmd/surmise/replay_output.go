@@ -39,6 +39,20 @@ func fillRow(r *report.TickRow, est *daemon.Estimate) {
 	}
 	for j, o := range est.Outputs {
 		r.Innovations[j], r.InnovationStd[j] = o.Innovation, o.InnovationStd
+		var f uint8
+		switch o.Bias {
+		case 1:
+			f |= report.FaultBiasHigh
+		case -1:
+			f |= report.FaultBiasLow
+		}
+		if o.Stuck {
+			f |= report.FaultStuck
+		}
+		if o.LockedOut {
+			f |= report.FaultLockedOut
+		}
+		r.Faults[j] = f
 	}
 	r.NIS, r.Dof = est.NIS, est.Dof
 	r.NISMean, r.BandLo, r.BandHi = est.NISMean, est.NISBand[0], est.NISBand[1]
@@ -220,7 +234,7 @@ func writeReplaySummary(w io.Writer, plant *config.Plant, src *daemon.ReplaySour
 	if len(res.Issues) > 0 {
 		fmt.Fprintf(w, "issues: %d (on standard error, with their lines)\n", len(res.Issues))
 	}
-	for ri, s := range sums {
+	for _, s := range sums {
 		pct := func(k int) string { return fmt.Sprintf("%.1f %%", 100*float64(k)/float64(max(s.Ticks, 1))) }
 		fmt.Fprintf(w, "%s (%s)\n", s.Gains, s.Form)
 		fmt.Fprintf(w, "  status      tracking %s, coasting %s, stale-input %s, suspect %s\n", pct(s.Tracking), pct(s.Coasting), pct(s.StaleInput), pct(s.Suspect))
@@ -231,31 +245,52 @@ func writeReplaySummary(w io.Writer, plant *config.Plant, src *daemon.ReplaySour
 				fnum(s.MeanNIS), s.NISTicks, fnum(s.MeanDof), 100*s.NISInBand, s.Outliers)
 		}
 		for _, o := range s.Outputs {
-			white := "white"
-			switch {
-			case o.Autocorr == nil:
-				white = "too few to test whiteness"
-			case !o.White:
-				white = fmt.Sprintf("not white (%d of %d lags outside ±%s)", o.Outside, report.Lags, fnum(o.Bound))
+			white := "too few to test whiteness"
+			if o.Autocorr != nil {
+				white = "white"
+				if !o.White {
+					white = "not white"
+				}
+				white += fmt.Sprintf(" (Ljung–Box Q %s over %d lags, p %s)", fnum(o.LjungBox), report.Lags, fpval(o.P))
 			}
 			fmt.Fprintf(w, "  innovation  %-14s RMS %s %s, mean %s, %s\n", o.Name, fnum(o.RMS), o.Unit, fnum(o.Mean), white)
 		}
-		if in.Truth != nil {
-			for i, name := range in.StateNames {
-				rms, cnt := 0.0, 0
-				est := in.Runs[ri].Ticks.States[i]
-				for k, tv := range in.Truth[i] {
-					if d := est[k] - tv; !math.IsNaN(d) {
-						rms += d * d
-						cnt++
-					}
-				}
-				if cnt > 0 {
-					fmt.Fprintf(w, "  error       %-14s RMS %s %s against the true state\n", name, fnum(math.Sqrt(rms/float64(cnt))), in.StateUnits[i])
-				}
+		for _, o := range s.Outputs {
+			writeFaults(w, o, s.Start)
+		}
+		for _, st := range s.States {
+			if st.N == 0 {
+				continue
 			}
+			cov := ""
+			if st.CoverageN > 0 {
+				cov = fmt.Sprintf(", within ±2σ on %.1f %% of ticks", 100*st.Coverage)
+			}
+			fmt.Fprintf(w, "  error       %-14s RMS %s %s against the true state%s\n", st.Name, fnum(st.RMS), st.Unit, cov)
 		}
 	}
+}
+
+// fpval formats a p-value, small ones in scientific notation.
+func fpval(p float64) string {
+	if p > 0 && p < 1e-3 {
+		return strconv.FormatFloat(p, 'e', 1, 64)
+	}
+	return strconv.FormatFloat(p, 'f', 3, 64)
+}
+
+// writeFaults prints one line per output with the episodes of its sensor's
+// fault indicators, and its drop-out share.
+func writeFaults(w io.Writer, o report.OutputSummary, t0 time.Time) {
+	var parts []string
+	for _, e := range o.Faults {
+		parts = append(parts, fmt.Sprintf("%s %v–%v", report.FaultName(e.Kind), e.Start.Sub(t0).Round(time.Second), e.End.Sub(t0).Round(time.Second)))
+	}
+	what := "no fault indicated"
+	if len(parts) > 0 {
+		what = strings.Join(parts, "; ")
+	}
+	fmt.Fprintf(w, "  sensor      %-14s %s; no sample on %.1f %% of ticks\n", o.Name, what, 100*o.Dropout)
 }
 
 func pluralWord(n int, one, many string) string {

@@ -140,6 +140,14 @@ func runSimulate(ctx context.Context, e *env, args []string) error {
 		return err
 	}
 	defer nc.Close()
+	if !f.remote {
+		// The server may have been found rather than given (a local
+		// daemon's access file can name a server elsewhere): check the
+		// one connected to as well.
+		if err := loopbackOnly(nc.ConnectedUrl()); err != nil {
+			return usageError("%v", err)
+		}
+	}
 	describeSimulation(e, plant, sc, f.seed, f.speed, f.prefix)
 	fmt.Fprintf(e.stdout, "publishing invented values to %s", nc.ConnectedUrlRedacted())
 	if f.length > 0 {
@@ -298,7 +306,7 @@ func loopbackOnly(urls string) error {
 		if ip := net.ParseIP(host); ip != nil && ip.IsLoopback() {
 			continue
 		}
-		return fmt.Errorf("--nats %s is not on this machine: simulate publishes invented measurements, so it only talks to a loopback server unless --remote is given (read 'surmise simulate -h' first)", parsed.Redacted())
+		return fmt.Errorf("the NATS server %s is not on this machine: simulate publishes invented measurements, so it only talks to a loopback server unless --remote is given (read 'surmise simulate -h' first)", parsed.Redacted())
 	}
 	return nil
 }

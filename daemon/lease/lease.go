@@ -6,13 +6,16 @@
 // thing, the value names the owner (instance id, host, pid, process start,
 // and when it took the lease). It is taken by compare-and-set — Create,
 // which succeeds only when the key is absent or deleted — and kept by
-// Update with the revision last written, every Renew interval. The bucket's
-// time-to-live removes an entry its owner stopped renewing, so a process
-// that dies, hangs or loses the server loses its leases after the TTL and
-// another may take them.
+// compare-and-set writes on the revision last written, every Renew
+// interval. The bucket's time-to-live removes an entry its owner stopped
+// renewing, so a process that dies, hangs or loses the server loses its
+// leases after the TTL and another may take them.
 //
 // One [Manager] serves any number of leases of one bucket from one renewal
-// goroutine and one watch of the bucket: there is no goroutine per lease.
+// goroutine and one watch of the bucket: there is no goroutine per lease,
+// and the renewals of a round go out together (asynchronous publishes whose
+// acknowledgements are collected at once), so a round costs about one round
+// trip however many leases a process holds.
 // [Manager.Acquire] tries once and returns a [*HeldError] naming the owner
 // when someone else holds the key; [Manager.Standby] registers a wish and
 // the Manager takes the key as soon as it is free (a clean release is seen
@@ -30,6 +33,7 @@
 package lease
 
 import (
+	"bytes"
 	"context"
 	"encoding/json"
 	"errors"
@@ -125,7 +129,9 @@ type Config struct {
 
 // Manager holds and renews the leases of one bucket for one process.
 type Manager struct {
+	js      jetstream.JetStream
 	kv      jetstream.KeyValue
+	put     string // the subject prefix of the bucket's entries, "$KV.<bucket>."
 	ttl     time.Duration
 	renew   time.Duration
 	self    Owner
@@ -204,7 +210,7 @@ func Open(ctx context.Context, nc *nats.Conn, cfg Config) (*Manager, error) {
 		return nil, fmt.Errorf("lease: watching bucket %s: %w", cfg.Bucket, err)
 	}
 	m := &Manager{
-		kv: kv, ttl: ttl, renew: renew, self: self, changed: cfg.Changed, log: log,
+		js: js, kv: kv, put: "$KV." + cfg.Bucket + ".", ttl: ttl, renew: renew, self: self, changed: cfg.Changed, log: log,
 		leases: map[string]*Lease{},
 		base:   time.Now(),
 		wake:   make(chan struct{}, 1),
@@ -384,12 +390,89 @@ func (m *Manager) each(ctx context.Context) {
 		ls = append(ls, l)
 	}
 	m.mu.Unlock()
+	m.renewAll(ctx, ls)
 	for _, l := range ls {
 		if ctx.Err() != nil {
 			return
 		}
-		m.step(ctx, l)
+		m.step(ctx, l) // waiting ones; held ones were renewed above
 	}
+}
+
+// renewAll renews every held lease of ls that is due, all at once: the
+// compare-and-set writes go out as asynchronous publishes and their
+// acknowledgements are collected together, so that a round costs about one
+// round trip however many leases the process holds.
+func (m *Manager) renewAll(ctx context.Context, ls []*Lease) {
+	type pending struct {
+		l    *Lease
+		sent time.Time
+		ack  jetstream.PubAckFuture
+	}
+	var ps []pending
+	for _, l := range ls {
+		l.op.Lock()
+		if l.state != held || time.Since(l.lastOK) < m.renew*3/4 {
+			l.op.Unlock()
+			continue
+		}
+		sent := time.Now()
+		ack, err := m.js.PublishMsgAsync(&nats.Msg{Subject: m.put + l.key, Data: l.val},
+			jetstream.WithExpectLastSequencePerSubject(l.rev))
+		if err != nil {
+			m.renewFailed(l, err)
+			l.op.Unlock()
+			continue
+		}
+		ps = append(ps, pending{l, sent, ack}) // l.op stays locked until its answer
+	}
+	wait := time.NewTimer(m.renew / 2)
+	defer wait.Stop()
+	expired := false
+	for _, p := range ps {
+		if !expired {
+			select {
+			case a := <-p.ack.Ok():
+				p.l.rev = a.Sequence
+				p.l.renewed(p.sent)
+			case err := <-p.ack.Err():
+				m.renewFailed(p.l, err)
+			case <-wait.C:
+				expired = true
+			case <-ctx.Done():
+				expired = true
+			}
+		}
+		if expired && ctx.Err() == nil {
+			m.renewFailed(p.l, context.DeadlineExceeded)
+		}
+		p.l.op.Unlock()
+	}
+}
+
+// renewFailed handles a failed renewal of l (l.op held): lost when someone
+// else wrote the entry or the lease is past its validity, else retried at
+// the next look.
+func (m *Manager) renewFailed(l *Lease, err error) {
+	var api *jetstream.APIError
+	if errors.As(err, &api) && (api.ErrorCode == jetstream.JSErrCodeStreamWrongLastSequence || api.ErrorCode == jetstream.JSErrCodeStreamWrongLastSequenceConstant) {
+		// A renewal whose answer we gave up on may have been written:
+		// the entry then holds this very tenure's value (instance and
+		// time taken), which nobody else writes. Adopt its revision.
+		ctx, cancel := context.WithTimeout(context.Background(), m.renew/2)
+		defer cancel()
+		if e, gerr := m.kv.Get(ctx, l.key); gerr == nil && bytes.Equal(e.Value(), l.val) {
+			l.rev = e.Revision()
+			return
+		}
+		m.lose(l, "taken or lapsed", err)
+		return
+	}
+	if since := time.Since(l.lastOK); since >= 2*m.renew {
+		m.lose(l, fmt.Sprintf("not renewed for %v", since.Round(time.Millisecond)), err)
+		return
+	}
+	l.warn(m.log, "lease: renewal failed, retrying", err)
 }
 
 // step renews l when held, tries to take it when waiting.
@@ -404,30 +487,9 @@ func (m *Manager) step(ctx context.Context, l *Lease) {
 			l.warn(m.log, "lease: trying to take", err)
 		}
 	case held:
-		sent := time.Now()
-		if sent.Sub(l.lastOK) < m.renew*3/4 {
-			return // not due
-		}
-		// An Update that succeeds proves that nobody took the key since
-		// our last write, even when it comes after Held turned false.
-		rev, err := m.kv.Update(rctx, l.key, l.val, l.rev)
-		if err == nil {
-			l.rev = rev
-			l.renewed(sent)
-			return
-		}
-		if ctx.Err() != nil {
-			return
-		}
-		if errors.Is(err, jetstream.ErrKeyRevisionMismatch) || errors.Is(err, jetstream.ErrKeyExists) {
-			m.lose(l, "taken or lapsed", err)
-			return
-		}
-		if time.Since(l.lastOK) >= 2*m.renew {
-			m.lose(l, fmt.Sprintf("not renewed for %v", time.Since(l.lastOK).Round(time.Millisecond)), err)
-			return
-		}
-		l.warn(m.log, "lease: renewal failed, retrying", err)
+		// Renewed by renewAll. (A renewal that succeeds after Held turned
+		// false is still sound: the compare-and-set proves that nobody
+		// took the key since our last write.)
 	}
 }
 

@@ -18,6 +18,10 @@
   };
   const PALETTE = ['#0d4f56', '#c2410c', '#2563eb', '#7c3aed', '#15803d', '#9f1239', '#854d0e', '#334155'];
   const FLAG_USED = 1, FLAG_GATE = 2, FLAG_STALE = 4;
+  // The engine's sensor watch (active lane): a bias (two-sided CUSUM of the normalised
+  // innovation), a stuck sensor, a gate lock-out.
+  const FLAG_BIAS_HIGH = 8, FLAG_BIAS_LOW = 16, FLAG_STUCK = 32, FLAG_LOCKED = 64;
+  const LB_LAGS = 10, LB_LEVEL = 0.01;
 
   const $ = (id) => document.getElementById(id);
   const root = document.documentElement;
@@ -470,7 +474,7 @@
       return el('tr', {}, el('td', { class: 'name', text: o.name }),
         withUnit(num(c[p + 'meas'][k]), o.unit), withUnit(num(c[p + 'pred'][k]), o.unit), innTd,
         withUnit(c[p + 'up'][k] == null ? '—' : '±' + num(c[p + 'up'][k]), o.unit), ageTd, gateTd, staleTd,
-        el('td', { class: 'small', text: samplesOf(o.name) }));
+        sensorCell(j, k), whitenessCell(j), el('td', { class: 'small', text: samplesOf(o.name) }));
     });
     $('outputs-table').tBodies[0].replaceChildren(...outRows);
     const stRows = info.states.map((s, i) => {
@@ -489,6 +493,41 @@
     });
     $('inputs-table').tBodies[0].replaceChildren(...inRows);
     showGains();
+  }
+
+  // sensorCell shows the sensor watch's indicators of output j at row k, and the share of the
+  // last window of rows without a fresh sample.
+  function sensorCell(j, k) {
+    const c = cur.store.cols, p = 'o' + j, f = c[p + 'flags'][k] || 0, meas = c[p + 'meas'];
+    const words = [];
+    if (f & FLAG_BIAS_HIGH) words.push('bias, reads high');
+    if (f & FLAG_BIAS_LOW) words.push('bias, reads low');
+    if (f & FLAG_STUCK) words.push('stuck');
+    if (f & FLAG_LOCKED) words.push('locked out');
+    let missing = 0, n = 0;
+    for (let i = meas.length - 1; i >= 0 && n < cur.info.window; i--, n++) if (meas[i] == null) missing++;
+    const share = n ? Math.round(100 * missing / n) : 0;
+    const td = el('td', { text: (words.length ? words.join(', ') : 'ok') + (share ? ' · ' + share + ' % no sample' : '') });
+    if (words.length) td.dataset.flag = 'bad';
+    else if (share > 50) td.dataset.flag = 'warn';
+    return td;
+  }
+
+  // whitenessCell tests the innovations output j's active lane used over the last window.
+  function whitenessCell(j) {
+    const c = cur.store.cols, p = 'o' + j, inn = c[p + 'inn'], flags = c[p + 'flags'];
+    const x = [];
+    for (let i = inn.length - 1; i >= 0 && x.length < cur.info.window; i--) {
+      if ((flags[i] & FLAG_USED) && inn[i] != null) x.push(inn[i]);
+    }
+    x.reverse();
+    const lb = window.surmiseStats.ljungBox(x, LB_LAGS);
+    if (!lb) return el('td', { text: '—', title: 'too few innovations in the window to test' });
+    const white = lb.p >= LB_LEVEL;
+    const td = el('td', { text: (white ? 'white' : 'not white') + ' (p ' + (lb.p < 1e-3 ? lb.p.toExponential(1) : lb.p.toFixed(3)) + ')',
+      title: 'Ljung–Box Q = ' + lb.q.toFixed(1) + ' over lags 1–' + LB_LAGS + ' of the last ' + x.length + ' innovations' });
+    if (!white) td.dataset.flag = 'warn';
+    return td;
   }
 
   // rms is the root mean square of the innovations of output j that the lane used, over the last

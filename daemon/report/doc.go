@@ -19,20 +19,29 @@
 // lies inside the two-sided 95 % band of χ²(dof) for that tick's dof
 // (quantiles from gonum's distuv), the fraction of ticks whose windowed mean
 // NIS lies inside the band the engine computed for it, and per output the
-// innovation's mean and RMS and the whiteness test: the normalised
-// autocorrelation at lags 1 to 10 against ±1.96/√N (after Mehra, 1970, cited from memory), the
-// sequence being called white when at most MaxOutside lags fall outside.
-// Which NIS a tick with an outlier carries is the driver's choice; the
-// statistics take every tick with Dof > 0 as it comes.
+// innovation's mean and RMS, the whiteness test — the Ljung–Box statistic
+// over the normalised autocorrelations at lags 1 to 10 and its chi-square
+// p-value (Ljung and Box, Biometrika 65(2), 1978; white when p ≥
+// WhitenessLevel) — the share of ticks without a sample, and the episodes
+// of the sensor's fault indicators (Ticks.Faults). When the recording
+// holds the true states: per state the error RMS and the share of ticks
+// with |error| ≤ 2σ (about 95 % for an honest σ). Which NIS a tick with an
+// outlier carries is the driver's choice; the statistics take every tick
+// with Dof > 0 as it comes.
 //
 // # The page
 //
 // One HTML file with inline CSS and inline SVG, drawn with gonum/plot: no
 // scripts, fonts, images or style sheets from anywhere, so it opens offline
-// and can be mailed. Plots share one time axis: innovations per output with
-// the ±2√S each gain set claims, the NIS (the largest of each time bucket,
-// the windowed mean and its band, on a log scale), and the states with ±2σ
-// and, for a simulated recording, the true states. Series longer than
+// and can be mailed. The table puts first what matters when the truth is
+// known (error RMS and 2σ coverage per state and set, side by side). Plots
+// share one time axis: innovations per output with the ±2√S each gain set
+// claims and bars for its fault episodes, the NIS (the largest of each time
+// bucket, the windowed mean and its band, on a log scale), and the states
+// with ±2σ and, for a simulated recording, the true states. Each gain set
+// has a colour and a dash. The y-limits of the innovation and state plots
+// hold every value that lasts more than two ticks and the settled bands; a
+// spike beyond them is marked by a triangle at the edge. Series longer than
 // 2·Buckets points are reduced to the minimum and maximum of each of
 // Buckets time buckets, so a one-tick spike survives and a day of ticks
 // makes a page of about half a megabyte. A line breaks where its values stop

@@ -55,13 +55,16 @@ type page struct {
 	HasStateStd   bool
 	Buckets       int
 	Colspan       int
-	MaxOutside    int
 	Lags          int
+	Level         string
+	HasFaults     bool
+	Clipped       int
 }
 
 type runView struct {
 	Gains, Form, Fingerprint string
 	Color                    string
+	Line                     template.CSS // the legend chip: colour and dash
 }
 
 type tableSection struct {
@@ -108,6 +111,26 @@ func count(n, of int) string {
 	return fmt.Sprintf("%d (%.1f %%)", n, 100*float64(n)/float64(of))
 }
 
+// pval formats a p-value: small ones in scientific notation.
+func pval(p float64) string {
+	if p < 1e-3 && p > 0 {
+		return strconv.FormatFloat(p, 'e', 1, 64)
+	}
+	return num(p)
+}
+
+// faultText lists fault episodes as "bias, reads high 45 s–65 s", times
+// from the start of the run.
+func faultText(eps []FaultEpisode, t0 time.Time) string {
+	parts := make([]string, 0, len(eps))
+	for _, e := range eps {
+		parts = append(parts, fmt.Sprintf("%s %s–%s", FaultName(e.Kind), shortDur(e.Start.Sub(t0)), shortDur(e.End.Sub(t0))))
+	}
+	return strings.Join(parts, "; ")
+}
+
+func shortDur(d time.Duration) string { return d.Round(time.Second).String() }
+
 func withUnit(name, unit string) string {
 	if unit == "" {
 		return name
@@ -137,28 +160,29 @@ func buildPage(in *Input) (*page, error) {
 	}
 	pg := &page{
 		Plant: in.Plant, Source: in.Source,
-		Start:      t0.Format("2006-01-02 15:04:05.000 MST"),
-		End:        t1.Format("2006-01-02 15:04:05.000 MST"),
-		Duration:   t1.Sub(t0).Round(time.Millisecond).String(),
-		Ticks:      strconv.Itoa(total),
-		HasTruth:   in.Truth != nil,
-		Buckets:    Buckets,
-		Colspan:    len(in.Runs) + 2,
-		MaxOutside: MaxOutside,
-		Lags:       Lags,
+		Start:    t0.Format("2006-01-02 15:04:05.000 MST"),
+		End:      t1.Format("2006-01-02 15:04:05.000 MST"),
+		Duration: t1.Sub(t0).Round(time.Millisecond).String(),
+		Ticks:    strconv.Itoa(total),
+		HasTruth: in.Truth != nil,
+		Buckets:  Buckets,
+		Colspan:  len(in.Runs) + 2,
+		Lags:     Lags,
+		Level:    strconv.FormatFloat(WhitenessLevel, 'g', -1, 64),
 	}
 	for i, r := range in.Runs {
 		fp := r.Fingerprint
 		if len(fp) > 16 {
 			fp = fp[:16] + "…"
 		}
-		pg.Runs = append(pg.Runs, runView{Gains: r.Gains, Form: r.Form, Fingerprint: fp, Color: cssColor(palette(i))})
+		pg.Runs = append(pg.Runs, runView{Gains: r.Gains, Form: r.Form, Fingerprint: fp, Color: cssColor(palette(i)),
+			Line: template.CSS("background:" + dashCSS(i, cssColor(palette(i))))})
 		if r.Ticks.StateStd != nil {
 			pg.HasStateStd = true
 		}
 	}
 	pg.Sections = tableSections(in, sums)
-	if err := addPlots(pg, in); err != nil {
+	if err := addPlots(pg, in, sums); err != nil {
 		return nil, err
 	}
 	return pg, nil
@@ -213,7 +237,24 @@ func tableSections(in *Input, sums []Summary) []tableSection {
 			return tableCell{Text: pct(s.WindowsInBand), Warn: s.WindowsInBand < 0.9}
 		}),
 	)
-	out := []tableSection{ticks, nis}
+	var out []tableSection
+	if in.Truth != nil {
+		// What matters most when the truth is known: the error and whether
+		// the claimed σ covers it — first.
+		truth := tableSection{Title: "Against the true states: error RMS · share of ticks with |error| ≤ 2σ"}
+		for i, name := range in.StateNames {
+			truth.Rows = append(truth.Rows, row(withUnit(name, unitOf(in.StateUnits, i)), "· 95 %", func(s *Summary) tableCell {
+				st := s.States[i]
+				txt := num(st.RMS)
+				if st.CoverageN > 0 {
+					txt += " · " + pct(st.Coverage)
+				}
+				return tableCell{Text: txt, Warn: st.CoverageN > 0 && st.Coverage < 0.9}
+			}))
+		}
+		out = append(out, truth)
+	}
+	out = append(out, ticks, nis)
 	for j, name := range in.OutputNames {
 		unit := unitOf(in.OutputUnits, j)
 		sec := tableSection{Title: "Innovation of " + withUnit(name, unit)}
@@ -221,7 +262,7 @@ func tableSections(in *Input, sums []Summary) []tableSection {
 			row("values", "", plain(func(s *Summary) string { return strconv.Itoa(s.Outputs[j].N) })),
 			row("mean", "0", plain(func(s *Summary) string { return num(s.Outputs[j].Mean) })),
 			row("RMS", "", plain(func(s *Summary) string { return num(s.Outputs[j].RMS) })),
-			row(fmt.Sprintf("lags 1–%d outside ±1.96/√N", Lags), fmt.Sprintf("≤ %d", MaxOutside), func(s *Summary) tableCell {
+			row(fmt.Sprintf("Ljung–Box Q over lags 1–%d, p-value", Lags), fmt.Sprintf("p ≥ %g", WhitenessLevel), func(s *Summary) tableCell {
 				o := s.Outputs[j]
 				if o.Autocorr == nil {
 					return tableCell{Text: "—"}
@@ -230,7 +271,15 @@ func tableSections(in *Input, sums []Summary) []tableSection {
 				if !o.White {
 					verdict = "not white"
 				}
-				return tableCell{Text: fmt.Sprintf("%d (%s)", o.Outside, verdict), Warn: !o.White}
+				return tableCell{Text: fmt.Sprintf("Q %s, p %s (%s)", num(o.LjungBox), pval(o.P), verdict), Warn: !o.White}
+			}),
+			row("ticks without a sample", "", plain(func(s *Summary) string { return pct(s.Outputs[j].Dropout) })),
+			row("sensor faults", "none", func(s *Summary) tableCell {
+				o := s.Outputs[j]
+				if o.Faults == nil {
+					return tableCell{Text: "none"}
+				}
+				return tableCell{Text: faultText(o.Faults, s.Start), Warn: true}
 			}),
 		)
 		r := row("ρ(1), …, ρ(10)", "", plain(func(s *Summary) string {
@@ -251,7 +300,7 @@ func tableSections(in *Input, sums []Summary) []tableSection {
 	return out
 }
 
-func addPlots(pg *page, in *Input) error {
+func addPlots(pg *page, in *Input, sums []Summary) error {
 	ax := newTimeAxis(in)
 	xs := make([][]float64, len(in.Runs))
 	decs := make([]decimator, len(in.Runs))
@@ -270,15 +319,43 @@ func addPlots(pg *page, in *Input) error {
 		unit := unitOf(in.OutputUnits, j)
 		title := "Innovation of " + withUnit(name, unit) + ", with ±2√S"
 		f := newFigure(title, ax.label(), withUnit("innovation", unit))
+		var vals, keep [][]float64
+		segs := make([][]plotter.XYs, len(in.Runs))
 		for i := range in.Runs {
-			f.lines(decs[i].lines(xs[i], in.Runs[i].Ticks.Innovations[j]), withAlpha(palette(i), 0xa0), 0.5)
+			t := &in.Runs[i].Ticks
+			vals = append(vals, t.Innovations[j])
+			if t.InnovationStd != nil {
+				keep = append(keep, scaled(t.InnovationStd[j], 2), scaled(t.InnovationStd[j], -2))
+			}
+			segs[i] = decs[i].lines(xs[i], t.Innovations[j])
+			f.lines(segs[i], withAlpha(palette(i), 0xa0), 0.6, dashes(i)...)
 		}
 		// The claimed ±2√S on top, as edges: under a dense cloud of
 		// innovations a filled band would not show.
 		for i := range in.Runs {
 			t := &in.Runs[i].Ticks
 			if t.InnovationStd != nil {
-				f.lines(edges(decs[i].band(xs[i], nil, t.InnovationStd[j], 2)), darker(palette(i)), 1.1)
+				f.lines(edges(decs[i].band(xs[i], nil, t.InnovationStd[j], 2)), darker(palette(i)), 1.3, dashes(i)...)
+			}
+		}
+		lo, hi := f.ymin, f.ymax
+		if l, h, ok := robustRange(vals, keep); ok {
+			lo, hi = l, h
+			f.p.Y.Min, f.p.Y.Max = lo, hi
+			for i := range in.Runs {
+				pg.Clipped += f.clipMarks(segs[i], lo, hi, darker(palette(i)))
+			}
+		}
+		// Fault episodes of each set as bars along the bottom.
+		for i := range in.Runs {
+			var bars [][2]float64
+			for _, e := range sums[i].Outputs[j].Faults {
+				x0, x1 := xs[i][e.From], xs[i][e.To]
+				bars = append(bars, [2]float64{x0, math.Max(x1, x0+0.004*ax.end)})
+			}
+			if len(bars) > 0 {
+				pg.HasFaults = true
+				f.spans(bars, lo+(0.03+0.05*float64(i))*(hi-lo), darker(palette(i)))
 			}
 		}
 		v, err := render(f, title)
@@ -311,7 +388,7 @@ func addPlots(pg *page, in *Input) error {
 			}
 			f.lines(clamp(decs[i].lines(xs[i], t.BandLo)), palette(i), 0.8, vg.Points(3), vg.Points(2))
 			f.lines(clamp(decs[i].lines(xs[i], t.BandHi)), palette(i), 0.8, vg.Points(3), vg.Points(2))
-			f.lines(clamp(decs[i].lines(xs[i], t.NISMean)), palette(i), 1.4)
+			f.lines(clamp(decs[i].lines(xs[i], t.NISMean)), palette(i), 1.4, dashes(i)...)
 		}
 		switch {
 		case f.points == 0:
@@ -337,17 +414,34 @@ func addPlots(pg *page, in *Input) error {
 			title += ", with ±2σ"
 		}
 		f := newFigure(title, ax.label(), withUnit(name, unit))
+		var vals, keep [][]float64
+		segs := make([][]plotter.XYs, len(in.Runs))
 		for i := range in.Runs {
 			t := &in.Runs[i].Ticks
+			vals = append(vals, t.States[s])
 			if t.StateStd != nil {
-				f.bands(decs[i].band(xs[i], t.States[s], t.StateStd[s], 2), withAlpha(palette(i), 0x30))
+				// The band, filled lightly, and its edges in the set's
+				// colour and dash, so that bands of several sets stay
+				// readable where they overlap.
+				polys := decs[i].band(xs[i], t.States[s], t.StateStd[s], 2)
+				f.bands(polys, withAlpha(palette(i), 0x22))
+				f.lines(edges(polys), withAlpha(palette(i), 0xb0), 0.5, dashes(i)...)
+				keep = append(keep, plus(t.States[s], t.StateStd[s], 2), plus(t.States[s], t.StateStd[s], -2))
 			}
 		}
 		for i := range in.Runs {
-			f.lines(decs[i].lines(xs[i], in.Runs[i].Ticks.States[s]), palette(i), 0.8)
+			segs[i] = decs[i].lines(xs[i], in.Runs[i].Ticks.States[s])
+			f.lines(segs[i], palette(i), 1, dashes(i)...)
 		}
 		if in.Truth != nil {
-			f.lines(decs[0].lines(xs[0], in.Truth[s]), color.Gray{0x20}, 0.8, vg.Points(4), vg.Points(2))
+			vals = append(vals, in.Truth[s])
+			f.lines(decs[0].lines(xs[0], in.Truth[s]), color.Gray{0x20}, 0.9, vg.Points(4), vg.Points(2))
+		}
+		if lo, hi, ok := robustRange(vals, keep); ok {
+			f.p.Y.Min, f.p.Y.Max = lo, hi
+			for i := range in.Runs {
+				pg.Clipped += f.clipMarks(segs[i], lo, hi, darker(palette(i)))
+			}
 		}
 		v, err := render(f, title)
 		if err != nil {
@@ -356,6 +450,24 @@ func addPlots(pg *page, in *Input) error {
 		pg.States = append(pg.States, v)
 	}
 	return nil
+}
+
+// scaled returns k·v.
+func scaled(v []float64, k float64) []float64 {
+	out := make([]float64, len(v))
+	for i, x := range v {
+		out[i] = k * x
+	}
+	return out
+}
+
+// plus returns c + k·s.
+func plus(c, s []float64, k float64) []float64 {
+	out := make([]float64, len(c))
+	for i := range c {
+		out[i] = c[i] + k*s[i]
+	}
+	return out
 }
 
 const pageTemplate = `<!DOCTYPE html>
@@ -400,31 +512,31 @@ figure svg { display: block; width: 100%; height: auto; }
 <h1>Replay report — {{.Plant}}</h1>
 <p class="meta">Recording <b>{{.Source}}</b> · {{.Start}} to {{.End}} ({{.Duration}}) · {{.Ticks}} ticks</p>
 <ul class="runs">
-{{range .Runs}}<li><span class="chip" style="background:{{.Color}}"></span><b>{{.Gains}}</b> · {{.Form}} <span class="fp">{{.Fingerprint}}</span></li>
+{{range .Runs}}<li><span class="chip" style="{{.Line}}"></span><b>{{.Gains}}</b> · {{.Form}} <span class="fp">{{.Fingerprint}}</span></li>
 {{end}}</ul>
 <p class="caution"><b>Caution.</b> Estimates are a model's inference, not measurements, and a replay shows how gain sets behaved on this recording only. An estimator is not a safety function: interlocks and trips act on measured signals; commissioning follows local codes and licensed engineering practice. A status here is the estimator's judgement of itself, not a process alarm.</p>
 </header>
 
 <h2>Summary</h2>
 <table>
-<thead><tr><th></th><th>expected</th>{{range .Runs}}<th><span class="chip" style="background:{{.Color}}"></span>{{.Gains}}</th>{{end}}</tr></thead>
+<thead><tr><th></th><th>expected</th>{{range .Runs}}<th><span class="chip" style="{{.Line}}"></span>{{.Gains}}</th>{{end}}</tr></thead>
 {{range .Sections}}<tbody>
 <tr><th colspan="{{$.Colspan}}">{{.Title}}</th></tr>
 {{range .Rows}}<tr><td class="label">{{.Label}}</td><td class="exp">{{.Expected}}</td>{{$small := .Small}}{{range .Cells}}<td class="{{if .Warn}}warn{{else if $small}}small{{end}}">{{.Text}}</td>{{end}}</tr>
 {{end}}</tbody>
 {{end}}</table>
-<p class="note">Expected values are those of a consistent filter: a NIS inside its two-sided 95 % chi-square band on 95 % of ticks, a mean NIS equal to the mean number of outputs (dof), white innovations (at most {{.MaxOutside}} of {{.Lags}} autocorrelation lags outside ±1.96/√N). Highlighted cells fall short of that.</p>
+<p class="note">Expected values are those of a consistent filter: a NIS inside its two-sided 95 % chi-square band on 95 % of ticks, a mean NIS equal to the mean number of outputs (dof), white innovations (the Ljung–Box test over lags 1–{{.Lags}}: a p-value of at least {{.Level}}; Ljung and Box, Biometrika 65(2), 1978), no sensor fault (a bias from a two-sided CUSUM of the normalised innovation, k = 0.5, h = 10; a stuck value; a gate lock-out){{if .HasTruth}}, and an error within ±2σ on 95 % of ticks{{end}}. Highlighted cells fall short of that.</p>
 
 <h2>Innovations</h2>
-<div class="legend">{{range .Runs}}<span><span class="chip" style="background:{{.Color}}"></span>{{.Gains}}</span>{{end}}<span><span class="chip" style="background:#445"></span>±2√S claimed by each gain set (darker line)</span></div>
+<div class="legend">{{range .Runs}}<span><span class="chip" style="{{.Line}}"></span>{{.Gains}}</span>{{end}}<span><span class="chip" style="background:#445"></span>±2√S claimed by each gain set (darker, thicker line)</span>{{if .HasFaults}}<span><span class="chip" style="height:6px;background:#555"></span>bars along the bottom: the set's sensor-fault episodes (see the table)</span>{{end}}{{if .Clipped}}<span>▲ ▼ at an edge: values beyond the view ({{.Clipped}} points), which holds every value lasting more than two ticks and the claimed bands once settled</span>{{end}}</div>
 {{range .Innovations}}<figure>{{.SVG}}</figure>
 {{end}}
 <h2>NIS</h2>
-<div class="legend">{{range .Runs}}<span><span class="chip" style="background:{{.Color}}"></span>{{.Gains}}: thin, the largest NIS of each time bucket; thick, the windowed mean; dashed, its 95 % band</span>{{end}}</div>
+<div class="legend">{{range .Runs}}<span><span class="chip" style="{{.Line}}"></span>{{.Gains}}: thin, the largest NIS of each time bucket; thick, the windowed mean; dashed, its 95 % band</span>{{end}}</div>
 <figure>{{.NIS.SVG}}</figure>
 
 <h2>States</h2>
-<div class="legend">{{range .Runs}}<span><span class="chip" style="background:{{.Color}}"></span>{{.Gains}}</span>{{end}}{{if .HasStateStd}}<span><span class="swatch" style="background:#9aa5b1;opacity:.35"></span>±2σ</span>{{end}}{{if .HasTruth}}<span><span class="chip" style="background:repeating-linear-gradient(90deg,#333 0 6px,transparent 6px 9px)"></span>true state (simulation)</span>{{end}}</div>
+<div class="legend">{{range .Runs}}<span><span class="chip" style="{{.Line}}"></span>{{.Gains}}</span>{{end}}{{if .HasStateStd}}<span><span class="swatch" style="background:#9aa5b1;opacity:.35"></span>±2σ (edges in the set's colour and dash)</span>{{end}}{{if .HasTruth}}<span><span class="chip" style="background:repeating-linear-gradient(90deg,#333 0 6px,transparent 6px 9px)"></span>true state (simulation)</span>{{end}}</div>
 {{range .States}}<figure>{{.SVG}}</figure>
 {{end}}
 <p class="note">Long series are drawn as the minimum and maximum of each of {{.Buckets}} time buckets, so single-tick spikes remain visible. Times are those of the recording.</p>

@@ -137,3 +137,78 @@ func TestWriteHTMLNonFiniteAndConstantSeries(t *testing.T) {
 		t.Fatal(err)
 	}
 }
+
+// TestWriteHTMLComparesWhatMatters checks the report's layout: with the
+// truth, the error RMS and 2σ coverage per state come first; each set has
+// its own dash; whiteness is the Ljung–Box test; fault episodes are listed
+// and drawn; a spike leaves the view with a mark instead of setting it.
+func TestWriteHTMLComparesWhatMatters(t *testing.T) {
+	in := simulate(3_000, 5)
+	// A bias flagged on the probe by the second set from tick 1000 to 1200.
+	for k := 1000; k <= 1200; k++ {
+		in.Runs[1].Ticks.Faults[0][k] = FaultBiasHigh
+	}
+	// A lone 40 °C spike on the probe's innovation, far beyond the rest.
+	in.Runs[0].Ticks.Innovations[0][2000] = 40
+	var buf bytes.Buffer
+	if err := WriteHTML(&buf, in); err != nil {
+		t.Fatal(err)
+	}
+	page := buf.String()
+	truth, ticks := strings.Index(page, "Against the true states"), strings.Index(page, ">Ticks<")
+	if truth < 0 || ticks < 0 || truth > ticks {
+		t.Errorf("the comparison with the true states is not first (at %d, ticks at %d)", truth, ticks)
+	}
+	sums := Summarise(in)
+	for _, s := range sums {
+		for _, st := range s.States {
+			if want := num(st.RMS) + " · " + pct(st.Coverage); !strings.Contains(page, want) {
+				t.Errorf("%s: the page lacks %q for %s", s.Gains, want, st.Name)
+			}
+		}
+	}
+	if !strings.Contains(page, "Ljung–Box Q over lags 1–10") || strings.Contains(page, "outside ±1.96/√N") {
+		t.Error("whiteness is not the Ljung–Box test")
+	}
+	if !strings.Contains(page, "bias, reads high 1m40s–2m0s") || !strings.Contains(page, "bars along the bottom") {
+		t.Errorf("the fault episode is not listed and drawn: %v", sums[1].Outputs[0].Faults)
+	}
+	if !strings.Contains(page, "repeating-linear-gradient(90deg,#d05a06 0 6px") {
+		t.Error("the second set's legend chip is not dashed")
+	}
+	if !strings.Contains(page, "values beyond the view") {
+		t.Error("the spike did not leave the view with a mark")
+	}
+	if strings.Contains(page, ">40<") {
+		t.Error("the spike set the y axis")
+	}
+}
+
+func TestRobustRange(t *testing.T) {
+	// A noise of ±1 with two lone spikes of 50 and a step to 5 lasting ten
+	// values: the spikes leave the view, the step stays, the band edges at
+	// ±3 stay.
+	v := make([]float64, 200)
+	for i := range v {
+		v[i] = math.Sin(float64(i))
+	}
+	v[50], v[120] = 50, -50
+	for i := 150; i < 160; i++ {
+		v[i] = 5
+	}
+	edges := make([]float64, 200)
+	for i := range edges {
+		edges[i] = -3
+	}
+	lo, hi, ok := robustRange([][]float64{v}, [][]float64{edges})
+	if !ok || !(hi > 5 && hi < 6) || !(lo < -3 && lo > -4) {
+		t.Errorf("robustRange = %v, %v, %v; want about −3.6, 5.6, true", lo, hi, ok)
+	}
+	ramp := make([]float64, 40)
+	for i := range ramp {
+		ramp[i] = float64(i)
+	}
+	if _, _, ok := robustRange([][]float64{ramp}, nil); ok {
+		t.Error("a series without spikes needs no limits of its own")
+	}
+}

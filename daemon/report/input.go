@@ -37,7 +37,7 @@ type Run struct {
 // with NewTicks and Append, or fill the columns directly.
 //
 // Optional columns may be nil: StateStd, InnovationStd, NISMean, BandLo,
-// BandHi. Within a column, NaN means "not available at this tick".
+// BandHi, Faults. Within a column, NaN means "not available at this tick".
 type Ticks struct {
 	Time   []time.Time
 	Status []string // the tick's status word: tracking, coasting, stale-input, suspect
@@ -55,7 +55,20 @@ type Ticks struct {
 	BandLo, BandHi []float64 // its 95 % band
 
 	Outliers []int // samples rejected by the gate at this tick
+
+	// Faults[j][k] holds the fault indicators of output j at tick k, as
+	// FaultBiasHigh | FaultBiasLow | FaultStuck | FaultLockedOut bits.
+	Faults [][]uint8
 }
+
+// Fault bits of Ticks.Faults: the sensor watch's indicators of one output
+// at one tick.
+const (
+	FaultBiasHigh  uint8 = 1 << iota // the CUSUM says the sensor reads high
+	FaultBiasLow                     // … reads low
+	FaultStuck                       // repeated values, or innovations far below their claim
+	FaultLockedOut                   // the gate refused the last samples in a row
+)
 
 // TickRow is one tick, as the replay driver produces it. Its slices are
 // read by Ticks.Append and may be reused for the next tick.
@@ -70,6 +83,7 @@ type TickRow struct {
 	Dof                     int
 	NISMean, BandLo, BandHi float64
 	Outliers                int
+	Faults                  []uint8 // per output; nil appends zeros
 }
 
 // NewTicks returns empty Ticks for n states and p outputs, with room for
@@ -95,7 +109,16 @@ func NewTicks(n, p, capacity int) Ticks {
 		BandLo:        make([]float64, 0, capacity),
 		BandHi:        make([]float64, 0, capacity),
 		Outliers:      make([]int, 0, capacity),
+		Faults:        faultCols(p, capacity),
 	}
+}
+
+func faultCols(p, capacity int) [][]uint8 {
+	c := make([][]uint8, p)
+	for i := range c {
+		c[i] = make([]uint8, 0, capacity)
+	}
+	return c
 }
 
 // Len returns the number of ticks.
@@ -140,6 +163,13 @@ func (t *Ticks) Append(r *TickRow) {
 	t.BandLo = append(t.BandLo, r.BandLo)
 	t.BandHi = append(t.BandHi, r.BandHi)
 	t.Outliers = append(t.Outliers, r.Outliers)
+	for j := range t.Faults {
+		var f uint8
+		if r.Faults != nil {
+			f = r.Faults[j]
+		}
+		t.Faults[j] = append(t.Faults[j], f)
+	}
 }
 
 // Validate checks that every column has the right length and that the
@@ -205,6 +235,16 @@ func (in *Input) Validate() error {
 			for i, c := range m.cols {
 				if len(c) != k {
 					return bad(fmt.Sprintf("%s[%d]", m.what, i), len(c))
+				}
+			}
+		}
+		if t.Faults != nil {
+			if len(t.Faults) != p {
+				return fmt.Errorf("report: run %q: Faults has %d columns, want %d", r.Gains, len(t.Faults), p)
+			}
+			for j, c := range t.Faults {
+				if len(c) != k {
+					return bad(fmt.Sprintf("Faults[%d]", j), len(c))
 				}
 			}
 		}

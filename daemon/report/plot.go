@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"image/color"
 	"math"
+	"sort"
 	"strings"
 	"time"
 
@@ -40,6 +41,100 @@ func palette(i int) color.NRGBA {
 }
 
 func withAlpha(c color.NRGBA, a uint8) color.NRGBA { c.A = a; return c }
+
+// dashes gives each gain set its line pattern, in the order of Input.Runs,
+// so that sets stay apart where colours are hard to tell (a grey print, a
+// colour-blind reader): solid, dashed, dotted, dash-dot, long dash.
+func dashes(i int) []vg.Length {
+	p := [...][]vg.Length{
+		nil,
+		{vg.Points(6), vg.Points(3)},
+		{vg.Points(1.5), vg.Points(2)},
+		{vg.Points(6), vg.Points(2), vg.Points(1.5), vg.Points(2)},
+		{vg.Points(12), vg.Points(4)},
+	}
+	return p[i%len(p)]
+}
+
+// dashCSS is the CSS background of a legend chip that shows dashes(i).
+func dashCSS(i int, c string) string {
+	switch i % 5 {
+	case 1:
+		return fmt.Sprintf("repeating-linear-gradient(90deg,%s 0 6px,transparent 6px 9px)", c)
+	case 2:
+		return fmt.Sprintf("repeating-linear-gradient(90deg,%s 0 2px,transparent 2px 4px)", c)
+	case 3:
+		return fmt.Sprintf("repeating-linear-gradient(90deg,%s 0 6px,transparent 6px 8px,%s 8px 10px,transparent 10px 12px)", c, c)
+	case 4:
+		return fmt.Sprintf("repeating-linear-gradient(90deg,%s 0 12px,transparent 12px 16px)", c)
+	}
+	return c
+}
+
+// robustRange returns y limits for a plot of the series vals with the
+// bands whose edges are keep. The limits hold every value of vals that
+// persists — the range of their running medians over 5 values, so that a
+// spike of one or two ticks leaves the view (clipMarks marks it) instead of
+// squashing everything else to a line, while a bias or a step stays in
+// view — and the 5 % to 95 % quantiles of each edge series (a band that is
+// wide only while the filter settles does not set the scale), with a margin
+// of 8 %. ok is false when there is nothing to bound, or when the limits
+// already hold every value and edge (gonum's own limits are then right).
+func robustRange(vals, keep [][]float64) (lo, hi float64, ok bool) {
+	lo, hi = math.Inf(1), math.Inf(-1)
+	allLo, allHi := math.Inf(1), math.Inf(-1)
+	var win [5]float64
+	for _, c := range vals {
+		n := 0
+		for _, v := range c {
+			if math.IsNaN(v) || math.IsInf(v, 0) {
+				continue
+			}
+			allLo, allHi = math.Min(allLo, v), math.Max(allHi, v)
+			win[n%5] = v
+			n++
+			if n >= 5 {
+				m := median5(win)
+				lo, hi = math.Min(lo, m), math.Max(hi, m)
+			}
+		}
+	}
+	var e []float64
+	for _, c := range keep {
+		e = e[:0]
+		for _, v := range c {
+			if !math.IsNaN(v) && !math.IsInf(v, 0) {
+				e = append(e, v)
+				allLo, allHi = math.Min(allLo, v), math.Max(allHi, v)
+			}
+		}
+		if len(e) == 0 {
+			continue
+		}
+		sort.Float64s(e)
+		lo = math.Min(lo, e[int(0.05*float64(len(e)-1))])
+		hi = math.Max(hi, e[int(0.95*float64(len(e)-1))])
+	}
+	if math.IsInf(lo, 0) || math.IsInf(hi, 0) {
+		return 0, 0, false
+	}
+	pad := 0.08 * (hi - lo)
+	if pad == 0 {
+		pad = math.Max(math.Abs(hi)*0.1, 1e-9)
+	}
+	lo, hi = lo-pad, hi+pad
+	if lo <= allLo && hi >= allHi {
+		return 0, 0, false
+	}
+	return lo, hi, true
+}
+
+// median5 returns the median of five values.
+func median5(w [5]float64) float64 {
+	s := w
+	sort.Float64s(s[:])
+	return s[2]
+}
 
 // darker returns c at 60 % of its brightness.
 func darker(c color.NRGBA) color.NRGBA {
@@ -350,6 +445,69 @@ func (f *figure) lines(segs []plotter.XYs, c color.Color, width float64, dashes 
 		for _, p := range s {
 			f.ymin, f.ymax = math.Min(f.ymin, p.Y), math.Max(f.ymax, p.Y)
 		}
+	}
+}
+
+// clipMarks marks, at the edge of the view [lo, hi], every point of segs
+// beyond it: a triangle pointing the way the value went, in the run's
+// colour. It returns how many points it marked.
+func (f *figure) clipMarks(segs []plotter.XYs, lo, hi float64, c color.Color) int {
+	var up, down plotter.XYs
+	for _, s := range segs {
+		for _, p := range s {
+			switch {
+			case p.Y > hi:
+				up = append(up, plotter.XY{X: p.X, Y: hi})
+			case p.Y < lo:
+				down = append(down, plotter.XY{X: p.X, Y: lo})
+			}
+		}
+	}
+	for _, m := range []struct {
+		pts   plotter.XYs
+		shape draw.GlyphDrawer
+	}{{up, draw.PyramidGlyph{}}, {down, invertedPyramid{}}} {
+		if len(m.pts) == 0 {
+			continue
+		}
+		sc, err := plotter.NewScatter(m.pts)
+		if err != nil {
+			continue
+		}
+		sc.GlyphStyle.Shape = m.shape
+		sc.GlyphStyle.Color = c
+		sc.GlyphStyle.Radius = vg.Points(3)
+		f.p.Add(sc)
+	}
+	return len(up) + len(down)
+}
+
+// invertedPyramid is a filled triangle pointing down.
+type invertedPyramid struct{}
+
+// DrawGlyph implements draw.GlyphDrawer.
+func (invertedPyramid) DrawGlyph(c *draw.Canvas, sty draw.GlyphStyle, pt vg.Point) {
+	c.SetColor(sty.Color)
+	r := sty.Radius
+	var p vg.Path
+	p.Move(vg.Point{X: pt.X, Y: pt.Y - r})
+	p.Line(vg.Point{X: pt.X - r*vg.Length(math.Cos(math.Pi/6)), Y: pt.Y + r*vg.Length(math.Sin(math.Pi/6))})
+	p.Line(vg.Point{X: pt.X + r*vg.Length(math.Cos(math.Pi/6)), Y: pt.Y + r*vg.Length(math.Sin(math.Pi/6))})
+	p.Close()
+	c.Fill(p)
+}
+
+// spans draws one thick horizontal bar per interval [x0, x1] at height y,
+// for fault episodes along the bottom of a plot.
+func (f *figure) spans(xs [][2]float64, y float64, c color.Color) {
+	for _, x := range xs {
+		l, err := plotter.NewLine(plotter.XYs{{X: x[0], Y: y}, {X: x[1], Y: y}})
+		if err != nil {
+			continue
+		}
+		l.LineStyle.Color = c
+		l.LineStyle.Width = vg.Points(4)
+		f.p.Add(l)
 	}
 }
 

@@ -5,16 +5,17 @@ import (
 	"time"
 
 	"gonum.org/v1/gonum/stat/distuv"
+
+	"surmise/estimator"
 )
 
 // Lags is the number of autocorrelation lags of the whiteness test.
 const Lags = 10
 
-// MaxOutside is the most lags, of Lags, whose autocorrelation may fall
-// outside ±1.96/√N for an innovation sequence to be called white. Each lag
-// of a white sequence falls outside with probability 0.05, so three or more
-// of ten do with probability 0.0115 (binomial; see testdata/reference.py).
-const MaxOutside = 2
+// WhitenessLevel is the significance level of the whiteness test: an
+// innovation sequence whose Ljung–Box p-value is below it is called not
+// white. A white sequence is called not white with this probability.
+const WhitenessLevel = 0.01
 
 // Summary is the statistics of one run, the numbers of the report's table.
 type Summary struct {
@@ -44,6 +45,47 @@ type Summary struct {
 	WindowsInBand float64
 
 	Outputs []OutputSummary
+
+	// States holds, when the recording has the true states, the error of
+	// each state against the truth; nil otherwise.
+	States []StateSummary
+}
+
+// StateSummary is the error of one state's estimate against the truth.
+type StateSummary struct {
+	Name, Unit string
+	// N is the number of ticks with both an estimate and a true value.
+	N int
+	// RMS is the root mean square of the error estimate − truth.
+	RMS float64
+	// Coverage is the fraction of the ticks with a standard deviation on
+	// which |error| ≤ 2σ: about 0.95 for a filter whose σ is honest; NaN
+	// without σ. CoverageN is the number of those ticks.
+	Coverage  float64
+	CoverageN int
+}
+
+// FaultEpisode is a stretch of consecutive ticks on which one fault
+// indicator of an output was raised.
+type FaultEpisode struct {
+	Kind       uint8 // one of the Fault bits
+	From, To   int   // first and last tick, inclusive
+	Start, End time.Time
+}
+
+// FaultName names a Fault bit for a summary line.
+func FaultName(kind uint8) string {
+	switch kind {
+	case FaultBiasHigh:
+		return "bias, reads high"
+	case FaultBiasLow:
+		return "bias, reads low"
+	case FaultStuck:
+		return "stuck"
+	case FaultLockedOut:
+		return "locked out by the gate"
+	}
+	return "fault"
 }
 
 // OutputSummary is the statistics of one output's innovations.
@@ -54,12 +96,22 @@ type OutputSummary struct {
 	Mean, RMS float64 // of the innovation, in the output's unit
 
 	// Autocorr[j] is the normalised autocorrelation at lag j+1 (see
-	// Autocorrelation); Bound is 1.96/√N; Outside counts the lags beyond
-	// ±Bound; White is Outside ≤ MaxOutside. Autocorr is nil when N ≤ Lags.
+	// Autocorrelation), nil when N ≤ Lags; Bound is 1.96/√N, the 95 %
+	// bound on one lag, for reading them.
 	Autocorr []float64
 	Bound    float64
-	Outside  int
-	White    bool
+	// LjungBox and P are the Ljung–Box statistic over lags 1 to Lags and
+	// its p-value (estimator.LjungBox); White is P ≥ WhitenessLevel. NaN
+	// and false when Autocorr is nil.
+	LjungBox, P float64
+	White       bool
+
+	// Dropout is the fraction of ticks without an innovation for this
+	// output (no fresh sample, or a stale one).
+	Dropout float64
+	// Faults are the episodes of the sensor's fault indicators, in time
+	// order; nil without a Faults column.
+	Faults []FaultEpisode
 }
 
 // Summarise computes the Summary of every run of in, in order. It panics if
@@ -168,6 +220,7 @@ func summariseRun(in *Input, r *Run, bands *nisBands) Summary {
 			}
 		}
 		o.Mean, o.RMS, o.Bound = math.NaN(), math.NaN(), math.NaN()
+		o.LjungBox, o.P = math.NaN(), math.NaN()
 		if o.N > 0 {
 			o.Mean = sum / float64(o.N)
 			o.RMS = math.Sqrt(sq / float64(o.N))
@@ -175,16 +228,83 @@ func summariseRun(in *Input, r *Run, bands *nisBands) Summary {
 		}
 		if o.N > Lags {
 			o.Autocorr = Autocorrelation(make([]float64, Lags), col)
-			for _, rho := range o.Autocorr {
-				if !(math.Abs(rho) <= o.Bound) {
-					o.Outside++
-				}
-			}
-			o.White = o.Outside <= MaxOutside
+			o.LjungBox, o.P = estimator.LjungBox(o.Autocorr, o.N)
+			o.White = o.P >= WhitenessLevel
+		}
+		o.Dropout = 1 - float64(o.N)/float64(k)
+		if t.Faults != nil {
+			o.Faults = faultEpisodes(t.Faults[j], t.Time)
 		}
 		s.Outputs[j] = o
 	}
+	if in.Truth != nil {
+		s.States = stateErrors(in, r)
+	}
 	return s
+}
+
+// faultEpisodes finds the runs of each fault bit in one output's column.
+func faultEpisodes(col []uint8, times []time.Time) []FaultEpisode {
+	var out []FaultEpisode
+	for _, kind := range []uint8{FaultBiasHigh, FaultBiasLow, FaultStuck, FaultLockedOut} {
+		from := -1
+		for k := 0; k <= len(col); k++ {
+			on := k < len(col) && col[k]&kind != 0
+			switch {
+			case on && from < 0:
+				from = k
+			case !on && from >= 0:
+				out = append(out, FaultEpisode{Kind: kind, From: from, To: k - 1, Start: times[from], End: times[k-1]})
+				from = -1
+			}
+		}
+	}
+	// In time order.
+	for i := 1; i < len(out); i++ {
+		for j := i; j > 0 && out[j].From < out[j-1].From; j-- {
+			out[j], out[j-1] = out[j-1], out[j]
+		}
+	}
+	return out
+}
+
+// stateErrors compares a run's states with the truth.
+func stateErrors(in *Input, r *Run) []StateSummary {
+	out := make([]StateSummary, len(in.StateNames))
+	for i, name := range in.StateNames {
+		st := StateSummary{Name: name, RMS: math.NaN(), Coverage: math.NaN()}
+		if in.StateUnits != nil {
+			st.Unit = in.StateUnits[i]
+		}
+		est := r.Ticks.States[i]
+		var std []float64
+		if r.Ticks.StateStd != nil {
+			std = r.Ticks.StateStd[i]
+		}
+		sq, inside := 0.0, 0
+		for k, tv := range in.Truth[i] {
+			d := est[k] - tv
+			if math.IsNaN(d) {
+				continue
+			}
+			st.N++
+			sq += d * d
+			if std != nil && std[k] >= 0 {
+				st.CoverageN++
+				if math.Abs(d) <= 2*std[k] {
+					inside++
+				}
+			}
+		}
+		if st.N > 0 {
+			st.RMS = math.Sqrt(sq / float64(st.N))
+		}
+		if st.CoverageN > 0 {
+			st.Coverage = float64(inside) / float64(st.CoverageN)
+		}
+		out[i] = st
+	}
+	return out
 }
 
 // Autocorrelation writes to dst the normalised sample autocorrelation, at
@@ -194,11 +314,12 @@ func summariseRun(in *Input, r *Run, bands *nisBands) Summary {
 //
 //	ρ(j) = Σ_t (r_t − r̄)(r_{t+j} − r̄) / Σ_t (r_t − r̄)²
 //
-// Whiteness test after Mehra, "On the identification of variances and
-// adaptive Kalman filtering", IEEE TAC 15(2), 1970 (cited from memory): for a
-// white sequence of N values each ρ(j) lies inside ±1.96/√N with
-// probability about 0.95. A constant sequence gives NaNs; a lag at or
-// beyond the number of values gives 0. It returns dst.
+// For a white sequence of N values each ρ(j) lies inside ±1.96/√N with
+// probability about 0.95 (Mehra, "On the identification of variances and
+// adaptive Kalman filtering", IEEE TAC 15(2), 1970, cited from memory);
+// estimator.LjungBox combines them into one test. A constant sequence
+// gives NaNs; a lag at or beyond the number of values gives 0. It returns
+// dst.
 func Autocorrelation(dst, r []float64) []float64 {
 	x := make([]float64, 0, len(r))
 	mean := 0.0

@@ -9,6 +9,8 @@ import (
 	"time"
 
 	"gonum.org/v1/gonum/stat/distuv"
+
+	"surmise/estimator"
 )
 
 // reference is testdata/reference.json, computed by testdata/reference.py
@@ -117,8 +119,10 @@ func TestSummariseAgainstNumpy(t *testing.T) {
 				t.Errorf("output %d lag %d: ρ = %.15g, numpy %.15g", j, lag+1, o.Autocorr[lag], want.Autocorr[lag])
 			}
 		}
-		if o.Outside != want.Outside {
-			t.Errorf("output %d: %d lags outside, numpy %d", j, o.Outside, want.Outside)
+		// Ljung–Box on the same autocorrelations (the statistic and its
+		// scipy p-value are checked in estimator).
+		if q, p := estimator.LjungBox(o.Autocorr, o.N); q != o.LjungBox || p != o.P {
+			t.Errorf("output %d: Ljung–Box %v, %v; estimator.LjungBox %v, %v", j, o.LjungBox, o.P, q, p)
 		}
 	}
 	// The white sequence passes, the AR(1) sequence (coefficient 0.6) fails.
@@ -141,17 +145,6 @@ func TestNISBandsAgainstScipy(t *testing.T) {
 		if !near(lo, want[0], 1e-9) || !near(hi, want[1], 1e-9) {
 			t.Errorf("dof %d: band [%.12g, %.12g], scipy chi2.ppf [%.12g, %.12g]", dof, lo, hi, want[0], want[1])
 		}
-	}
-}
-
-// TestMaxOutsideFalseAlarm checks the false-alarm rate stated for
-// MaxOutside against scipy's binomial tail.
-func TestMaxOutsideFalseAlarm(t *testing.T) {
-	ref := loadReference(t)
-	b := distuv.Binomial{N: Lags, P: 0.05}
-	got := 1 - b.CDF(MaxOutside)
-	if !near(got, ref.Binomial3of10, 1e-9) || math.Abs(got-0.0115) > 5e-5 {
-		t.Errorf("P(more than %d of %d lags outside) = %g, scipy binom.sf %g, documented 0.0115", MaxOutside, Lags, got, ref.Binomial3of10)
 	}
 }
 
@@ -219,7 +212,7 @@ func TestSummariseSeededDraws(t *testing.T) {
 		t.Errorf("mean NIS %.4f, want 2 ± 0.04", s.MeanNIS)
 	}
 	if o := s.Outputs[0]; !o.White || math.Abs(o.RMS-0.5) > 0.01 {
-		t.Errorf("white normal draws: White %v (%d outside), RMS %.4f (want 0.5)", o.White, o.Outside, o.RMS)
+		t.Errorf("white normal draws: White %v (p %.3g), RMS %.4f (want 0.5)", o.White, o.P, o.RMS)
 	}
 	// Overconfident by a factor of 2 in variance: NIS doubles, and with it
 	// the mass above the upper quantile: P(χ²(2) > 7.3778/2) = e^(−1.8444)
