@@ -164,16 +164,8 @@ func onePublisherEach(names []string, seen map[string][]string) (map[string]stri
 // have a share; a gains update in the bucket reaches the owner; when one
 // stops, the other publishes every cart within 10 s, from the checkpoints.
 func TestFleetInProcess(t *testing.T) {
-	ns, err := daemon.StartEmbedded(daemon.EmbeddedOptions{Port: -1, StoreDir: t.TempDir()})
-	if err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { ns.Shutdown(); ns.WaitForShutdown() })
-	nc, err := nats.Connect(ns.ClientURL())
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer nc.Close()
+	nc := recTestServer(t)
+	url := nc.ConnectedUrl()
 	ctx := context.Background()
 	store, err := daemon.OpenFleet(ctx, nc, "bench", 0, 2*time.Second)
 	if err != nil {
@@ -188,9 +180,9 @@ func TestFleetInProcess(t *testing.T) {
 		}
 		names, lastGains = append(names, name), gains
 	}
-	pub := watchPublishers(t, ns.ClientURL())
+	pub := watchPublishers(t, url)
 	fleet := func(inst string) *running {
-		return startDaemon(t, daemon.Options{Bus: daemon.BusOptions{URL: ns.ClientURL()}, Instance: inst,
+		return startDaemon(t, daemon.Options{Bus: daemon.BusOptions{URL: url}, Instance: inst,
 			Fleet: &daemon.FleetOptions{Name: "bench", CheckpointEvery: 500 * time.Millisecond}, MinDwell: -1})
 	}
 	a, b := fleet("bench-a"), fleet("bench-b")

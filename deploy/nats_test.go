@@ -426,8 +426,6 @@ func (c *client) noViolations(t *testing.T, who string) {
 	}
 }
 
-// TestNATSPermissions starts a server from nats-1.conf (see start) with test credentials and
-// checks what each user may and may not do with the demo plant's subjects.
 // lockedBuffer is a bytes.Buffer safe for concurrent writers (a daemon's log).
 type lockedBuffer struct {
 	mu  sync.Mutex
@@ -446,6 +444,8 @@ func (b *lockedBuffer) String() string {
 	return b.buf.String()
 }
 
+// TestNATSPermissions starts a server from nats-1.conf (see start) with test credentials and
+// checks what each user may and may not do with the demo plant's subjects.
 func TestNATSPermissions(t *testing.T) {
 	s := setupNATS(t, true)
 	url := s.start(t)
