@@ -707,18 +707,18 @@ func TestNATSPermissions(t *testing.T) {
 		}
 	})
 
-	t.Run("a fleet: the engineer puts a plant, a fleet daemon runs it", func(t *testing.T) {
+	t.Run("a fleet: the gains admin puts a plant, a fleet daemon runs it", func(t *testing.T) {
 		ctx, cancel := context.WithTimeout(context.Background(), 20*time.Second)
 		defer cancel()
-		store, err := surmise.OpenFleet(ctx, engineer.Conn, "site", 0, 0)
+		store, err := surmise.OpenFleet(ctx, gainsAdmin.Conn, "site", 0, 0)
 		if err != nil {
-			t.Fatalf("engineer: opening the fleet: %v (server errors: %v)", err, engineer.pending())
+			t.Fatalf("gains-admin: opening the fleet: %v (server errors: %v)", err, gainsAdmin.pending())
 		}
 		// The hand-written cart, wired to the kit's plant subjects (pilot.>).
 		plant := bytes.ReplaceAll(readFile(t, filepath.Join("..", "testdata", "config", "double-integrator.yaml")), []byte("bench.cart."), []byte("pilot.cart."))
 		gains := readFile(t, filepath.Join("..", "testdata", "config", "double-integrator.gains.yaml"))
 		if _, _, err := store.Put(ctx, "double-integrator", plant, gains); err != nil {
-			t.Fatalf("engineer: put: %v", err)
+			t.Fatalf("gains-admin: put: %v", err)
 		}
 		var log lockedBuffer
 		seed, err := s.daemon.Seed()
@@ -762,12 +762,12 @@ func TestNATSPermissions(t *testing.T) {
 			time.Sleep(50 * time.Millisecond) // polling the bucket
 		}
 		if _, err := store.History(ctx, "double-integrator"); err != nil {
-			t.Errorf("engineer: history: %v", err)
+			t.Errorf("gains-admin: history: %v", err)
 		}
 		if names, err := store.Names(ctx); err != nil || !slices.Equal(names, []string{"double-integrator"}) {
-			t.Errorf("engineer: names %v, %v", names, err)
+			t.Errorf("gains-admin: names %v, %v", names, err)
 		}
-		engineer.noViolations(t, "engineer")
+		gainsAdmin.noViolations(t, "gains-admin")
 		stop()
 		if err := <-done; err != nil {
 			t.Errorf("fleet daemon: %v", err)
