@@ -17,8 +17,8 @@ import (
 	"surmise/estimator"
 )
 
-// The control service: one NATS micro service named
-// ControlService per daemon, with one group of endpoints per estimator,
+// The control service: one NATS micro service named ControlService per
+// daemon, with one endpoint per verb whose subject holds the estimator,
 //
 //	surmise.control.<estimator>.status    no body            → StatusReply
 //	surmise.control.<estimator>.load      a gains file       → LoadReply
@@ -89,40 +89,14 @@ type ControlError struct {
 
 // StartControl adds the control service for the commissioners' estimators
 // to the connection nc and returns it; Stop it before the connection
-// closes. Requests are handled on the connection's delivery goroutines, one
-// at a time per endpoint. There is no queue group: a request reaches every
-// daemon that runs the estimator (there should be one), and the requester
-// takes the first reply.
+// closes. See [StartControlIndex]: this is it with a fixed set of
+// estimators.
 func StartControl(nc *nats.Conn, comms []*Commissioner) (micro.Service, error) {
-	names := make([]string, len(comms))
-	for i, c := range comms {
-		names[i] = c.Name()
-	}
-	svc, err := micro.AddService(nc, micro.Config{
-		Name:               ControlService,
-		Version:            ControlVersion,
-		Description:        "Surmise estimators: gains, shadow candidate, promotion, roll-back, reset",
-		Metadata:           map[string]string{"estimators": strings.Join(names, ",")},
-		QueueGroupDisabled: true,
-	})
-	if err != nil {
-		return nil, fmt.Errorf("control service: %w", err)
-	}
+	idx := NewControlIndex()
 	for _, c := range comms {
-		g := svc.AddGroup(ControlRoot+"."+c.Name(), micro.WithGroupQueueGroupDisabled())
-		for _, ep := range controlEndpoints {
-			c, fn := c, ep.fn
-			h := micro.HandlerFunc(func(req micro.Request) {
-				v, err := fn(c, req)
-				respond(req, v, err)
-			})
-			if err := g.AddEndpoint(ep.verb, h, micro.WithEndpointMetadata(ep.metadata(c.Name()))); err != nil {
-				svc.Stop()
-				return nil, fmt.Errorf("control service: %s %s: %w", c.Name(), ep.verb, err)
-			}
-		}
+		idx.Add(c)
 	}
-	return svc, nil
+	return StartControlIndex(nc, idx)
 }
 
 // ControlSchema is where the JSON Schema of the control requests and replies

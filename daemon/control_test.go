@@ -20,7 +20,8 @@ import (
 // (in-process, random loopback port).
 type ctlRig struct {
 	*cmRig
-	nc *nats.Conn
+	nc  *nats.Conn
+	idx *ControlIndex
 }
 
 func newCtlRig(t *testing.T) *ctlRig {
@@ -35,7 +36,9 @@ func newCtlRig(t *testing.T) *ctlRig {
 		t.Fatal(err)
 	}
 	t.Cleanup(svcConn.Close)
-	svc, err := StartControl(svcConn, []*Commissioner{r.c})
+	r.idx = NewControlIndex()
+	r.idx.Add(r.c)
+	svc, err := StartControlIndex(svcConn, r.idx)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -121,8 +124,9 @@ func TestControlService(t *testing.T) {
 	}
 }
 
-// TestControlDiscovery asks $SRV.INFO for the service: one endpoint per verb
-// of each estimator, on surmise.control.<estimator>.<verb>, no queue group.
+// TestControlDiscovery asks $SRV.INFO for the service: one endpoint per
+// verb, on surmise.control.*.<verb> whatever the number of estimators, no
+// queue group.
 func TestControlDiscovery(t *testing.T) {
 	r := newCtlRig(t)
 	reply, err := r.nc.Request("$SRV.INFO."+ControlService, nil, 10*time.Second)
@@ -136,15 +140,44 @@ func TestControlDiscovery(t *testing.T) {
 	var subjects []string
 	for _, ep := range info.Endpoints {
 		subjects = append(subjects, ep.Subject)
-		if ep.Metadata["estimator"] != "cart" || ep.QueueGroup != "" {
-			t.Errorf("endpoint %+v", ep)
+		if ep.QueueGroup != "" {
+			t.Errorf("endpoint %+v has a queue group", ep)
 		}
 	}
 	slices.Sort(subjects)
-	want := []string{"surmise.control.cart.load", "surmise.control.cart.promote", "surmise.control.cart.reset",
-		"surmise.control.cart.rollback", "surmise.control.cart.status"}
+	want := []string{"surmise.control.*.load", "surmise.control.*.promote", "surmise.control.*.reset",
+		"surmise.control.*.rollback", "surmise.control.*.status"}
 	if !slices.Equal(subjects, want) || info.Name != ControlService || info.Version != ControlVersion {
 		t.Errorf("info %s: subjects %v", reply.Data, subjects)
+	}
+}
+
+// TestControlIndexRoutes checks that a request is routed by the estimator
+// in its subject: the one in the index answers, one that is not gets no
+// reply from this daemon (another daemon on the bus may run it), and one
+// added while the service runs answers from then on, one removed stops.
+func TestControlIndexRoutes(t *testing.T) {
+	r := newCtlRig(t)
+	ask := func(name string) error {
+		_, err := r.nc.Request(ControlSubject(name, VerbStatus), nil, 300*time.Millisecond)
+		return err
+	}
+	if err := ask("cart"); err != nil {
+		t.Fatalf("status of cart: %v", err)
+	}
+	if err := ask("other"); !errors.Is(err, nats.ErrTimeout) {
+		t.Errorf("status of an estimator not in the index: %v, want a timeout (no reply)", err)
+	}
+	r.idx.Remove("cart")
+	if err := ask("cart"); !errors.Is(err, nats.ErrTimeout) {
+		t.Errorf("status of a removed estimator: %v, want a timeout (no reply)", err)
+	}
+	r.idx.Add(r.c)
+	if err := ask("cart"); err != nil {
+		t.Errorf("status of cart added again: %v", err)
+	}
+	if got := r.idx.Names(); !slices.Equal(got, []string{"cart"}) {
+		t.Errorf("names %v", got)
 	}
 }
 

@@ -87,6 +87,20 @@ type Options struct {
 	// information collectors as well.
 	Registry *prometheus.Registry
 
+	// Instance names this daemon in every estimate it publishes
+	// ("instance") and, in a fleet, as the owner of its estimators; empty
+	// means DefaultInstance().
+	Instance string
+
+	// Fleet, when set, makes the daemon a member of a fleet: it runs the
+	// estimators of the fleet's bucket that fall to it (see FleetOptions),
+	// and Plants must be empty. It needs a NATS server with JetStream.
+	Fleet *FleetOptions
+
+	// Metrics is how many series each estimator has: MetricsFull (the
+	// zero value) or, for a fleet of many estimators, MetricsSummary.
+	Metrics MetricsLevel
+
 	// StateDir holds the embedded server's JetStream store (under
 	// StateDir/nats). Empty means a temporary directory, removed when the
 	// daemon stops.
@@ -165,6 +179,9 @@ func (o *Options) setDefaults() {
 	if o.Logger == nil {
 		o.Logger = slog.New(slog.DiscardHandler)
 	}
+	if o.Instance == "" {
+		o.Instance = DefaultInstance()
+	}
 	if o.RefusedLogInterval <= 0 {
 		o.RefusedLogInterval = badSampleLogEvery
 	}
@@ -179,8 +196,21 @@ func (o *Options) setDefaults() {
 // validate checks o after setDefaults and returns every problem found.
 func (o *Options) validate() error {
 	var errs []error
-	if len(o.Plants) == 0 {
+	switch f := o.Fleet; {
+	case f == nil && len(o.Plants) == 0:
 		errs = append(errs, errors.New("no plant to run"))
+	case f != nil && len(o.Plants) > 0:
+		errs = append(errs, fmt.Errorf("fleet %s: a fleet daemon runs the plants of its bucket, not plant files", f.Name))
+	case f != nil:
+		if err := CheckFleetName(f.Name); err != nil {
+			errs = append(errs, err)
+		}
+		if !instanceName.MatchString(o.Instance) {
+			errs = append(errs, fmt.Errorf("instance %q: in a fleet, want letters, digits, '-', '_', '=' or '.' (at most 128)", o.Instance))
+		}
+		if f.LeaseTTL != 0 && f.LeaseTTL < time.Second || f.CheckpointEvery < 0 || f.Replicas < 0 {
+			errs = append(errs, fmt.Errorf("fleet %s: lease TTL %v (want 0 or at least 1 s), checkpoint interval %v, replicas %d", f.Name, f.LeaseTTL, f.CheckpointEvery, f.Replicas))
+		}
 	}
 	seen := map[string]bool{}
 	for i, p := range o.Plants {
@@ -220,6 +250,17 @@ func (o *Options) validate() error {
 		return fmt.Errorf("daemon options: %w", err)
 	}
 	return nil
+}
+
+// DefaultInstance returns the instance name of a daemon that is given
+// none: the host name and the process id, "host-1234" (in a Kubernetes pod,
+// the pod's name and 1). Two daemons on one host differ by their process id.
+func DefaultInstance() string {
+	host, err := os.Hostname()
+	if err != nil || host == "" {
+		host = "localhost"
+	}
+	return fmt.Sprintf("%s-%d", host, os.Getpid())
 }
 
 // periodOf returns the tick period of a plant, its sample time.
@@ -263,6 +304,8 @@ type Daemon struct {
 	tempState   string         // a temporary state directory to remove
 	localDirs   []string       // local access files to remove (local.go)
 	bus         *Bus
+	fleet       *fleetRunner  // in a fleet (fleet_run.go)
+	router      *sampleRouter // the samples' dispatch path (dispatch.go)
 	schedCancel context.CancelFunc
 	schedDone   chan struct{}
 }
@@ -298,7 +341,7 @@ func New(opts Options) (*Daemon, error) {
 			return nil, err
 		}
 	}
-	m, err := newMetrics(reg)
+	m, err := newMetrics(reg, opts.Metrics)
 	if err != nil {
 		return nil, err
 	}
@@ -315,13 +358,16 @@ func New(opts Options) (*Daemon, error) {
 		d.estimators = append(d.estimators, newEstimator(d, p, prepared[i]))
 		longest = max(longest, periodOf(p.Plant))
 	}
+	if opts.Fleet != nil {
+		d.fleet = newFleetRunner(d)
+	}
 	if err := d.newCommissioning(); err != nil {
 		return nil, err
 	}
 	d.http, err = NewHTTPServer(HTTPOptions{
 		Addr:      opts.Listen,
 		Gatherer:  reg,
-		LastTick:  d.oldestTick,
+		LastTick:  d.lastTick,
 		Staleness: stallLimit(longest),
 		Ready:     d.missing,
 		Log:       d.log,
@@ -338,17 +384,28 @@ func New(opts Options) (*Daemon, error) {
 // newMetrics is NewMetrics with an error instead of a panic when the
 // registry already holds the daemon's metrics (two daemons on one registry:
 // an embedder's mistake that New can report).
-func newMetrics(reg prometheus.Registerer) (m *Metrics, err error) {
+func newMetrics(reg prometheus.Registerer, level MetricsLevel) (m *Metrics, err error) {
 	defer func() {
 		if r := recover(); r != nil {
 			err = fmt.Errorf("daemon metrics: %v", r)
 		}
 	}()
-	return NewMetrics(reg), nil
+	return NewMetricsLevel(reg, level), nil
 }
 
-// Estimators returns the daemon's estimators, in the order of Options.Plants.
-func (d *Daemon) Estimators() []*Estimator { return slices.Clone(d.estimators) }
+// Estimators returns the daemon's estimators, in the order of
+// Options.Plants; in a fleet, the estimators it runs now, by name.
+func (d *Daemon) Estimators() []*Estimator { return d.all() }
+
+// all returns the estimators of the plant files and those the daemon runs
+// for its fleet now.
+func (d *Daemon) all() []*Estimator {
+	out := slices.Clone(d.estimators)
+	if d.fleet != nil {
+		out = append(out, d.fleet.runningList()...)
+	}
+	return out
+}
 
 // Metrics returns the daemon's metrics.
 func (d *Daemon) Metrics() *Metrics { return d.metrics }
@@ -450,11 +507,26 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 		return ep, err
 	}
 	d.bus = bus
-	if err := d.startLeases(g, bus.Conn()); err != nil {
-		return ep, err
+	// A fleet daemon's estimators have the fleet's leases (fleet_run.go);
+	// the leases of plant files are for the others.
+	if d.fleet == nil {
+		if err := d.startLeases(g, bus.Conn()); err != nil {
+			return ep, err
+		}
 	}
+	signals := 0
 	for _, e := range d.estimators {
-		if err := e.subscribe(bus.Conn()); err != nil {
+		signals += len(e.signals)
+	}
+	if d.opts.Fleet != nil {
+		// Its estimators come later, as many as the fleet has: the
+		// largest channels (a few hundred KiB).
+		signals = shardMaxSlots
+	}
+	d.router = newSampleRouter(signals)
+	d.router.start(g)
+	for _, e := range d.estimators {
+		if err := d.router.subscribe(bus.Conn(), e); err != nil {
 			return ep, err
 		}
 	}
@@ -468,6 +540,11 @@ func (d *Daemon) start(g *Group) (Endpoints, error) {
 		if err := nc.FlushTimeout(drainTimeout); err != nil {
 			d.log.Warn("bus: subscriptions not confirmed by the server", "error", err)
 		}
+	}
+
+	// The fleet's estimators start ticking once the scheduler runs.
+	if d.fleet != nil {
+		d.startFleet(g)
 	}
 
 	g.Go("http", d.http.Serve)
@@ -501,12 +578,20 @@ func (d *Daemon) shutdown(g *Group) error {
 	}
 	d.log.Info("daemon stopping")
 	var errs []error
+	if d.fleet != nil {
+		// While the ticks still run: each estimator hands over a last
+		// checkpoint, and the leases are released for the others.
+		d.fleet.stopAll()
+	}
 	if d.schedCancel != nil {
 		d.schedCancel()
 		<-d.schedDone
 	}
 	leasesReleased := d.releaseLeases()
 	d.stopCommissioning()
+	if d.router != nil {
+		d.router.close()
+	}
 	if d.bus != nil {
 		if err := d.bus.Close(stopDrainTimeout); err != nil {
 			d.log.Warn("bus: closed without draining (pending samples and estimates dropped)", "error", err)
@@ -602,7 +687,7 @@ func (d *Daemon) Healthy() error {
 	}
 	now := d.now()
 	var errs []error
-	for _, e := range d.estimators {
+	for _, e := range d.all() {
 		last := e.lastTick.Load()
 		if last == 0 {
 			last = sched
@@ -614,6 +699,19 @@ func (d *Daemon) Healthy() error {
 	return errors.Join(errs...)
 }
 
+// lastTick is what /healthz judges: the oldest tick (oldestTick), or, in a
+// fleet, whose estimators and periods come and go, now while Healthy and
+// the zero time when not.
+func (d *Daemon) lastTick() time.Time {
+	if d.opts.Fleet == nil {
+		return d.oldestTick()
+	}
+	if d.Healthy() != nil {
+		return time.Time{}
+	}
+	return time.Now()
+}
+
 // oldestTick returns the start of the oldest of the estimators' latest
 // ticks, counting the start of the scheduler for an estimator that has not
 // ticked yet, and now while the daemon is starting: /healthz fails when it
@@ -623,8 +721,12 @@ func (d *Daemon) oldestTick() time.Time {
 	if sched == 0 {
 		return time.Now()
 	}
+	all := d.all()
+	if len(all) == 0 {
+		return time.Now() // a fleet daemon with nothing to run yet
+	}
 	oldest := int64(0)
-	for i, e := range d.estimators {
+	for i, e := range all {
 		last := e.lastTick.Load()
 		if last == 0 {
 			last = sched
@@ -662,12 +764,14 @@ func (d *Daemon) missing() []string {
 		m = append(m, "starting")
 	case !d.busConnected():
 		m = append(m, "bus not connected")
+	case d.fleet != nil && !d.fleet.joined.Load():
+		m = append(m, "fleet "+d.opts.Fleet.Name+": its buckets are not available yet")
 	}
 	if w := d.leases.waiting.Load(); w != nil {
 		m = append(m, *w)
 	}
-	for _, e := range d.estimators {
-		if d.scheduled.Load() != 0 && d.leases.waiting.Load() == nil && !e.mayPublish() {
+	for _, e := range d.all() {
+		if e.fleet == nil && d.scheduled.Load() != 0 && d.leases.waiting.Load() == nil && !e.mayPublish() {
 			m = append(m, "estimator "+e.name+": its lease is not held")
 		}
 		if !e.gainsOK.Load() {

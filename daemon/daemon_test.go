@@ -166,10 +166,12 @@ func startDaemon(t testing.TB, opts daemon.Options) *running {
 
 // wireEstimate is the JSON of an estimate as the tests read it.
 type wireEstimate struct {
-	Time   time.Time `json:"time"`
-	Seq    uint64    `json:"seq"`
-	Status string    `json:"status"`
-	States map[string]struct {
+	Estimator string    `json:"estimator"`
+	Instance  string    `json:"instance"`
+	Time      time.Time `json:"time"`
+	Seq       uint64    `json:"seq"`
+	Status    string    `json:"status"`
+	States    map[string]struct {
 		Value float64  `json:"value"`
 		Std   *float64 `json:"std"`
 	} `json:"states"`

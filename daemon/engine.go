@@ -542,14 +542,16 @@ func (e *Engine) CandidateTo(dst *Estimate) bool {
 // and CandidateTo never allocate.
 func (e *Engine) NewEstimate() *Estimate {
 	return &Estimate{
-		States:  make([]StateEstimate, e.n),
-		Inputs:  make([]InputValue, e.m),
-		Outputs: make([]OutputEstimate, e.p),
+		Estimator: e.name,
+		States:    make([]StateEstimate, e.n),
+		Inputs:    make([]InputValue, e.m),
+		Outputs:   make([]OutputEstimate, e.p),
 	}
 }
 
 // fill writes lane l's view of the last tick to dst.
 func (e *Engine) fill(l *lane, dst *Estimate) {
+	dst.Estimator = e.name
 	dst.Time = e.now
 	dst.Seq = e.seq
 	dst.Status = l.status

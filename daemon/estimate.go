@@ -14,6 +14,8 @@ import (
 // consistency figures. It is owned by the caller and reused from tick to
 // tick (Engine.NewEstimate makes one that fits). Unknown numbers are NaN.
 type Estimate struct {
+	Estimator   string    // the estimator's name (the plant's)
+	Instance    string    // the daemon instance that computed it; empty in a replay
 	Time        time.Time // the tick's due time
 	Seq         uint64    // tick sequence number, from 1
 	Status      Status
@@ -97,8 +99,8 @@ type OutputEstimate struct {
 // extended slice. It allocates nothing when dst has room. NaN and infinite
 // numbers are written as null. The object is
 //
-//	{"time": RFC 3339 with fraction, UTC, "seq", "status", "gains",
-//	 "fingerprint", "form",
+//	{"estimator", "instance", "time": RFC 3339 with fraction, UTC, "seq",
+//	 "status", "gains", "fingerprint", "form",
 //	 "states": {name: {"value", "std", "unit"}},
 //	 "inputs": {name: {"value", "age", "stale", "unit"}},
 //	 "outputs": {name: {"measured", "predicted", "innovation",
@@ -112,7 +114,11 @@ type OutputEstimate struct {
 // the tick on which the engine restarted the filter from the plant's initial
 // condition (DivergedHold ticks after it diverged).
 func (est *Estimate) AppendJSON(dst []byte) []byte {
-	dst = append(dst, `{"time":"`...)
+	dst = append(dst, `{"estimator":`...)
+	dst = appendString(dst, est.Estimator)
+	dst = append(dst, `,"instance":`...)
+	dst = appendString(dst, est.Instance)
+	dst = append(dst, `,"time":"`...)
 	dst = est.Time.UTC().AppendFormat(dst, time.RFC3339Nano)
 	dst = append(dst, `","seq":`...)
 	dst = strconv.AppendUint(dst, est.Seq, 10)

@@ -10,6 +10,8 @@ import (
 // decodedEstimate is the bus JSON as encoding/json sees it; pointers are nil
 // for null.
 type decodedEstimate struct {
+	Estimator   string    `json:"estimator"`
+	Instance    string    `json:"instance"`
 	Time        time.Time `json:"time"`
 	Seq         uint64    `json:"seq"`
 	Status      string    `json:"status"`
@@ -54,6 +56,8 @@ func jsonSame(p *float64, v float64) bool {
 
 func TestEstimateAppendJSON(t *testing.T) {
 	est := &Estimate{
+		Estimator:   "hotwater-loop",
+		Instance:    `bench-7 "a"`,
 		Time:        time.Date(2025, 3, 1, 12, 0, 0, 123456789, time.FixedZone("CET", 3600)),
 		Seq:         18446744073709551615,
 		Status:      StatusStaleInput,
@@ -81,6 +85,9 @@ func TestEstimateAppendJSON(t *testing.T) {
 	}
 	if !d.Time.Equal(est.Time) || d.Time.Location() != time.UTC {
 		t.Errorf("time %v, want %v in UTC", d.Time, est.Time)
+	}
+	if d.Estimator != est.Estimator || d.Instance != est.Instance {
+		t.Errorf("estimator %q instance %q, want %q %q", d.Estimator, d.Instance, est.Estimator, est.Instance)
 	}
 	if d.Seq != est.Seq || d.Status != "stale-input" || d.Gains != est.Gains || d.Fingerprint != est.Fingerprint ||
 		d.Form != est.Form || d.Dof != est.Dof {

@@ -54,12 +54,12 @@ func ExampleEngine() {
 	if _, ok := e.Offer(hx, 54.4, t0.Add(-time.Hour), t0.Add(2100*time.Millisecond)); ok {
 		fmt.Println("an hour late, beyond max_delay: accepted now, refused as late by the next tick")
 	}
-	fmt.Printf("%.60s…\n", est.AppendJSON(nil))
+	fmt.Printf("%.110s…\n", est.AppendJSON(nil))
 	// Output:
 	// tick 1 tracking, corrected with 2 output(s), element 91.20 degC
 	// tick 2 tracking, corrected with 1 output(s), element 91.46 degC
 	// a sample of a tick that has run is accepted
 	// tick 3 tracking, corrected with 2 output(s), element 91.67 degC
 	// an hour late, beyond max_delay: accepted now, refused as late by the next tick
-	// {"time":"2025-03-01T12:00:02Z","seq":3,"status":"tracking","…
+	// {"estimator":"hotwater-loop-discrete","instance":"","time":"2025-03-01T12:00:02Z","seq":3,"status":"tracking",…
 }

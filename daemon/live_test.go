@@ -82,7 +82,7 @@ func TestLiveDemoPlant(t *testing.T) {
 	// not find its sample stale (that is not what this test is about).
 	spec.Plant.Inputs = longMaxAge(spec.Plant.Inputs)
 	spec.Plant.Outputs = longMaxAge(spec.Plant.Outputs)
-	r := startDaemon(t, daemon.Options{Plants: []daemon.PlantSpec{spec}, EmbeddedPort: -1})
+	r := startDaemon(t, daemon.Options{Plants: []daemon.PlantSpec{spec}, EmbeddedPort: -1, Instance: "bench-a"})
 
 	nc, err := nats.Connect(r.ep.BusURL)
 	if err != nil {
@@ -116,6 +116,9 @@ func TestLiveDemoPlant(t *testing.T) {
 			t.Fatalf("estimate %d: %v", k, err)
 		}
 		est := parseEstimate(t, msg.Data)
+		if est.Estimator != spec.Plant.Name || est.Instance != "bench-a" {
+			t.Fatalf("estimate %d names estimator %q and instance %q, want %q and bench-a", k, est.Estimator, est.Instance, spec.Plant.Name)
+		}
 		truth := sim.truth[len(sim.truth)-1]
 		// A sample stamped at or after the next tick's due time belongs to
 		// the tick after it: the next tick coasts (the harness was late).

@@ -2,10 +2,14 @@ package daemon_test
 
 import (
 	"fmt"
+	"io"
 	"math/rand/v2"
+	"net/http"
 	"os"
 	"os/exec"
+	"path/filepath"
 	"runtime"
+	"runtime/pprof"
 	"slices"
 	"strconv"
 	"strings"
@@ -196,6 +200,34 @@ func scalePlants(md *estimator.Model, set *estimator.GainSet, count int, ts time
 	return specs
 }
 
+// profileWindow starts a CPU profile of the measurement window when
+// SURMISE_PROFILE names a file (count is added before its extension, one
+// profile per size) and returns the function that stops it.
+func profileWindow(t *testing.T, count int) (stop func()) {
+	t.Helper()
+	name := os.Getenv("SURMISE_PROFILE")
+	if name == "" {
+		return func() {}
+	}
+	ext := filepath.Ext(name)
+	name = fmt.Sprintf("%s-%d%s", strings.TrimSuffix(name, ext), count, ext)
+	f, err := os.Create(name)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := pprof.StartCPUProfile(f); err != nil {
+		f.Close()
+		t.Fatal(err)
+	}
+	return func() {
+		pprof.StopCPUProfile()
+		if err := f.Close(); err != nil {
+			t.Error(err)
+		}
+		t.Logf("CPU profile of the window: %s", name)
+	}
+}
+
 // cpuTime returns the user and system CPU time of this process so far.
 func cpuTime(t *testing.T) time.Duration {
 	t.Helper()
@@ -211,8 +243,17 @@ func cpuTime(t *testing.T) time.Duration {
 // by a load generator in a separate process (this test binary again, see
 // TestLoadGenerator) that publishes every signal at 10 Hz, and reports the
 // daemon's CPU (getrusage user + system over the window ÷ wall time: the
-// engines, the NATS client and the embedded server together) and its missed
-// ticks. Goal at 1,000: ≤ 0.5 core, no missed tick.
+// engines, the NATS client and the embedded server together), its missed
+// ticks, goroutines, heap, and the size and time of one scrape of /metrics.
+// The metrics are at the summary level of a fleet process unless
+// SURMISE_METRICS=full.
+//
+// Goals, which fail the test when missed: fewer than 1,000 goroutines in
+// the process at any size (they must not grow with the estimators), no
+// missed tick at 1,000 estimators or fewer, and at most 0.35 core at 1,000
+// (pro rata below; above 1,000 the CPU is reported, not judged). The machine
+// must be otherwise quiet for the CPU and tick goals to mean anything: the
+// load average is printed beside them.
 func TestMeasureScale(t *testing.T) {
 	d := measureDuration(t)
 	counts := []int{1000}
@@ -233,10 +274,23 @@ func TestMeasureScale(t *testing.T) {
 	}
 }
 
+// Goals of the scale measurement.
+const (
+	scaleGoalCores      = 0.35 // per 1,000 estimators at 10 Hz
+	scaleGoalGoroutines = 1000 // in the whole process, at any size
+)
+
 func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, count int, ts, d time.Duration) {
 	reg := prometheus.NewPedanticRegistry()
+	level := daemon.MetricsSummary
+	if v := os.Getenv("SURMISE_METRICS"); v != "" {
+		var err error
+		if level, err = daemon.ParseMetricsLevel(v); err != nil {
+			t.Fatalf("SURMISE_METRICS: %v", err)
+		}
+	}
 	r := startDaemon(t, daemon.Options{Plants: scalePlants(md, set, count, ts), EmbeddedPort: -1,
-		Registry: reg, Logger: discardLogger()})
+		Registry: reg, Logger: discardLogger(), Metrics: level})
 
 	// Ticks are counted by the in-process hook, not from the registry: a
 	// Gather of this many series takes seconds, holds the metric vectors'
@@ -274,7 +328,9 @@ func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, cou
 	// window (the plants' Window ticks): before, the engine computes the
 	// chi-square band of a partial window every tick, which is start-up
 	// work, not the steady state measured here.
-	checkFor(t, 120*time.Second, 100*time.Millisecond, func() error {
+	// Above 1,000 estimators, a machine that cannot keep up never gets
+	// there: the window is then measured anyway, and the report says so.
+	settled := func() error {
 		n, full := 0, 0
 		for i := range tracked {
 			if tracked[i].Load() {
@@ -288,7 +344,17 @@ func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, cou
 			return fmt.Errorf("%d of %d estimators have tracked, %d have filled their window", n, count, full)
 		}
 		return nil
-	})
+	}
+	if count <= 1000 {
+		checkFor(t, 120*time.Second, 100*time.Millisecond, settled)
+	} else {
+		for deadline := time.Now().Add(120 * time.Second); settled() != nil && time.Now().Before(deadline); {
+			time.Sleep(500 * time.Millisecond) // polling the counters
+		}
+		if err := settled(); err != nil {
+			t.Logf("not settled after 2 minutes, measuring anyway: %v", err)
+		}
+	}
 	var ms runtime.MemStats
 	runtime.ReadMemStats(&ms)
 	gc0 := ms.NumGC
@@ -297,9 +363,11 @@ func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, cou
 		st0[i] = byStatus[i].Load()
 	}
 	ticks0, missed0 := ticks.Load(), missed.Load()
+	stopProfile := profileWindow(t, count)
 	cpu0, wall0 := cpuTime(t), time.Now()
 	time.Sleep(d) // the measurement window
 	cpu1, wall1 := cpuTime(t), time.Now()
+	stopProfile()
 	ticks1, missed1 := ticks.Load(), missed.Load()
 	var statuses []string
 	for i := range byStatus {
@@ -307,14 +375,14 @@ func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, cou
 	}
 	runtime.ReadMemStats(&ms)
 	gcs := ms.NumGC - gc0
+	goroutines := runtime.NumGoroutine()
 	runtime.GC() // the live heap, not the garbage since the last cycle
 	runtime.ReadMemStats(&ms)
-	g0 := time.Now()
+	scrapeBytes, scrapeTook := scrape(t, "http://"+r.ep.HTTPAddr.String()+"/metrics")
 	mfs, err := reg.Gather()
 	if err != nil {
 		t.Fatal(err)
 	}
-	took := time.Since(g0)
 	series := 0
 	for _, mf := range mfs {
 		series += len(mf.GetMetric())
@@ -323,22 +391,44 @@ func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, cou
 	wall := wall1.Sub(wall0)
 	cores := (cpu1 - cpu0).Seconds() / wall.Seconds()
 	due := float64(count) * wall.Seconds() / ts.Seconds()
-	t.Logf("%d estimators (10 states, 3 inputs, 2 outputs) at %v, %.0f samples/s offered, for %v: CPU %.3f cores (goal ≤ 0.5 at 1000); ticks %d run and %d missed of about %.0f due; by status: %s; live heap %.1f MiB, %d goroutines, %d GC cycles in the window; registry %d series, one Gather %v",
-		count, ts, float64(5*count)/ts.Seconds(), wall.Round(time.Millisecond), cores, ticks1-ticks0, missed1-missed0, due,
-		strings.Join(statuses, ", "), float64(ms.HeapAlloc)/(1<<20), runtime.NumGoroutine(), gcs, series, took.Round(time.Millisecond))
+	ticked, missedIn := ticks1-ticks0, missed1-missed0
+	load, _ := os.ReadFile("/proc/loadavg")
+	t.Logf("%d estimators (10 states, 3 inputs, 2 outputs) at %v, metrics %s, %.0f samples/s offered, for %v: CPU %.3f cores; ticks %d run and %d missed of about %.0f due; by status: %s; live heap %.1f MiB, %d goroutines, %d GC cycles in the window; registry %d series, one scrape of /metrics %.1f MiB in %v; load average %s",
+		count, ts, level, float64(5*count)/ts.Seconds(), wall.Round(time.Millisecond), cores, ticked, missedIn, due,
+		strings.Join(statuses, ", "), float64(ms.HeapAlloc)/(1<<20), goroutines, gcs, series,
+		float64(scrapeBytes)/(1<<20), scrapeTook.Round(time.Millisecond), strings.TrimSpace(string(load)))
 	// Every due tick is run or counted missed (the window's edges blur the
 	// count by a tick per estimator or so).
-	if n := float64(ticks1 - ticks0 + missed1 - missed0); n < 0.9*due {
+	if n := float64(ticked + missedIn); n < 0.9*due {
 		t.Errorf("%.0f ticks run or missed of about %.0f due: ticks went unaccounted", n, due)
 	}
-	if count == 1000 { // the goals are stated at 1,000 estimators
-		daemon.CheckGoals(t,
-			daemon.Goal{What: "CPU of 1,000 estimators at 10 Hz", Got: cores, Limit: 0.5, Unit: "cores"},
-			daemon.Goal{What: "ticks missed", Got: float64(missed1 - missed0), Limit: 0, Unit: "ticks"})
+	goals := []daemon.Goal{{What: "goroutines in the process", Got: float64(goroutines), Limit: scaleGoalGoroutines - 1, Unit: "goroutines"}}
+	if count <= 1000 { // the CPU and tick goals are stated at 1,000 estimators (pro rata below)
+		goals = append(goals,
+			daemon.Goal{What: fmt.Sprintf("CPU of %d estimators at 10 Hz", count), Got: cores, Limit: scaleGoalCores * float64(count) / 1000, Unit: "cores"},
+			daemon.Goal{What: "ticks missed", Got: float64(missedIn), Limit: 0, Unit: "ticks"})
 	}
+	daemon.CheckGoals(t, goals...)
 	if err := r.stop(); err != nil {
 		t.Fatal(err)
 	}
+}
+
+// scrape gets url once, as Prometheus would, and returns the size of the
+// body and the time it took.
+func scrape(t *testing.T, url string) (int64, time.Duration) {
+	t.Helper()
+	start := time.Now()
+	resp, err := http.Get(url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer resp.Body.Close()
+	n, err := io.Copy(io.Discard, resp.Body)
+	if err != nil || resp.StatusCode != http.StatusOK {
+		t.Fatalf("GET %s: %v %v", url, resp.Status, err)
+	}
+	return n, time.Since(start)
 }
 
 // TestLoadGenerator is the load generator of TestMeasureScale, run in a

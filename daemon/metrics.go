@@ -82,14 +82,20 @@ type Metrics struct {
 	busDropped     *prometheus.CounterVec
 	busDisconnects prometheus.Counter
 
+	// level says which series an estimator binds (metrics_level.go).
+	level MetricsLevel
+
 	// vecs lists every vector with an estimator label, for Remove.
 	vecs []*prometheus.MetricVec
 }
 
-// NewMetrics creates the daemon's metrics and registers them with reg. It
-// panics if any of them is already registered there: a registry is built
-// once per process, so that is a programmer mistake.
-func NewMetrics(reg prometheus.Registerer) *Metrics {
+// NewMetrics creates the daemon's metrics at MetricsFull and registers
+// them with reg. It panics if any of them is already registered there: a
+// registry is built once per process, so that is a programmer mistake.
+func NewMetrics(reg prometheus.Registerer) *Metrics { return NewMetricsLevel(reg, MetricsFull) }
+
+// NewMetricsLevel is NewMetrics with the estimators' series at level.
+func NewMetricsLevel(reg prometheus.Registerer, level MetricsLevel) *Metrics {
 	counter := func(name, help string, labels ...string) *prometheus.CounterVec {
 		return prometheus.NewCounterVec(prometheus.CounterOpts{Name: name, Help: help}, labels)
 	}
@@ -100,6 +106,7 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 		return prometheus.NewHistogramVec(prometheus.HistogramOpts{Name: name, Help: help, Buckets: TimingBuckets()}, labels)
 	}
 	m := &Metrics{
+		level: level,
 		ticks: counter("surmise_ticks_total",
 			"Ticks run, by the status of the tick.", labelEstimator, labelStatus),
 		overruns: counter("surmise_tick_overruns_total",
@@ -258,7 +265,16 @@ type EstimatorMetrics struct {
 // series [EstimatorMetrics.Primary] returns. Every series is created at once
 // — counters at 0, value gauges at NaN until their first update — so that
 // dashboards and rate() see them from the start.
+//
+// At MetricsSummary, the series of the whole process are bound instead of
+// the estimator's where the level says so (see MetricsSummary).
 func (m *Metrics) Estimator(name string, outputs, states, signals []string, gains string) *EstimatorMetrics {
+	// whole is the estimator label of the series kept for the whole
+	// process (the estimator's own name at MetricsFull).
+	whole, full := name, m.level == MetricsFull
+	if !full {
+		whole = ""
+	}
 	e := &EstimatorMetrics{
 		m:             m,
 		name:          name,
@@ -267,28 +283,34 @@ func (m *Metrics) Estimator(name string, outputs, states, signals []string, gain
 		signals:       append([]string(nil), signals...),
 		lastStatus:    numStatuses,
 		overruns:      m.overruns.WithLabelValues(name),
-		compute:       m.compute.WithLabelValues(name),
-		lateness:      m.lateness.WithLabelValues(name),
-		latest:        m.sampleToEst.WithLabelValues(name),
+		compute:       m.compute.WithLabelValues(whole),
+		lateness:      m.lateness.WithLabelValues(whole),
+		latest:        m.sampleToEst.WithLabelValues(whole),
 		reloadOK:      m.reloads.WithLabelValues(name, "ok"),
 		reloadRefused: m.reloads.WithLabelValues(name, "refused"),
 		lastReload:    m.lastReload.WithLabelValues(name),
 		ready:         m.ready.WithLabelValues(name),
 	}
 	for s := range numStatuses {
-		e.ticks[s] = m.ticks.WithLabelValues(name, s.String())
+		e.ticks[s] = m.ticks.WithLabelValues(whole, s.String())
 		e.status[s] = m.status.WithLabelValues(name, s.String())
 	}
 	for _, o := range e.outputs {
-		g := m.measurementAge.WithLabelValues(name, o)
-		g.Set(math.NaN())
+		var g prometheus.Gauge = dropped{}
+		if full {
+			g = m.measurementAge.WithLabelValues(name, o)
+			g.Set(math.NaN())
+		}
 		e.age = append(e.age, g)
 	}
 	for _, sig := range e.signals {
-		e.received = append(e.received, m.received.WithLabelValues(name, sig))
+		if !full {
+			sig = ""
+		}
+		e.received = append(e.received, m.received.WithLabelValues(whole, sig))
 		var byReason [numReasons]prometheus.Counter
 		for r := range numReasons {
-			byReason[r] = m.rejected.WithLabelValues(name, sig, r.String())
+			byReason[r] = m.rejected.WithLabelValues(whole, sig, r.String())
 		}
 		e.rejected = append(e.rejected, byReason)
 	}
@@ -378,23 +400,36 @@ type GainsMetrics struct {
 }
 
 // Gains binds the series of the gain set named gains (for a shadow set, or
-// after a promotion). Value gauges start at NaN.
+// after a promotion). Value gauges start at NaN. At MetricsSummary, the
+// innovations, states and latest NIS are dropped and the outliers counted
+// for the whole process.
 func (e *EstimatorMetrics) Gains(gains string) *GainsMetrics {
 	m := e.m
+	full := m.level == MetricsFull
 	nan := func(g prometheus.Gauge) prometheus.Gauge { g.Set(math.NaN()); return g }
+	detail := func(v *prometheus.GaugeVec, labels ...string) prometheus.Gauge {
+		if !full {
+			return dropped{}
+		}
+		return nan(v.WithLabelValues(labels...))
+	}
 	g := &GainsMetrics{
 		e:            e,
 		gains:        gains,
-		nis:          nan(m.nis.WithLabelValues(e.name, gains)),
+		nis:          detail(m.nis, e.name, gains),
 		nisMean:      nan(m.nisMean.WithLabelValues(e.name, gains)),
 		nisLower:     nan(m.nisLower.WithLabelValues(e.name, gains)),
 		nisUpper:     nan(m.nisUpper.WithLabelValues(e.name, gains)),
 		nisOutOfBand: m.nisOutOfBand.WithLabelValues(e.name, gains),
 	}
 	for _, o := range e.outputs {
-		g.innovation = append(g.innovation, nan(m.innovation.WithLabelValues(e.name, gains, o)))
-		g.innovationRMS = append(g.innovationRMS, nan(m.innovationRMS.WithLabelValues(e.name, gains, o)))
-		g.outliers = append(g.outliers, m.outliers.WithLabelValues(e.name, gains, o))
+		g.innovation = append(g.innovation, detail(m.innovation, e.name, gains, o))
+		g.innovationRMS = append(g.innovationRMS, detail(m.innovationRMS, e.name, gains, o))
+		if full {
+			g.outliers = append(g.outliers, m.outliers.WithLabelValues(e.name, gains, o))
+		} else {
+			g.outliers = append(g.outliers, m.outliers.WithLabelValues("", "", ""))
+		}
 		g.bias = append(g.bias, m.sensorBias.WithLabelValues(e.name, gains, o))
 		g.cusum = append(g.cusum, m.sensorCUSUM.WithLabelValues(e.name, gains, o))
 		g.stuck = append(g.stuck, m.sensorStuck.WithLabelValues(e.name, gains, o))
@@ -404,8 +439,8 @@ func (e *EstimatorMetrics) Gains(gains string) *GainsMetrics {
 		g.alarmsSeen = append(g.alarmsSeen, 0)
 	}
 	for _, s := range e.states {
-		g.state = append(g.state, nan(m.state.WithLabelValues(e.name, gains, s)))
-		g.stateStddev = append(g.stateStddev, nan(m.stateStddev.WithLabelValues(e.name, gains, s)))
+		g.state = append(g.state, detail(m.state, e.name, gains, s))
+		g.stateStddev = append(g.stateStddev, detail(m.stateStddev, e.name, gains, s))
 	}
 	return g
 }

@@ -655,6 +655,7 @@ type commissioning struct {
 	audit  *Audit
 	reload chan string // pending reload request: its trigger; capacity 1
 	svc    micro.Service
+	index  *ControlIndex // the estimators the control service answers for
 }
 
 // newCommissioning builds the commissioners of the daemon's estimators; New
@@ -682,6 +683,7 @@ func (d *Daemon) newCommissioning() error {
 		}
 		e.comm = c
 		e.shadow = shadowLane{subject: ShadowSubject(e.subject), est: e.engine.NewEstimate()}
+		e.shadow.est.Instance = e.d.opts.Instance
 	}
 	return nil
 }
@@ -725,7 +727,11 @@ func (d *Daemon) startCommissioning(g *Group, nc *nats.Conn) error {
 	if d.comm.audit.Path() == "" {
 		d.log.Info("no state directory: the audit trail of gain changes is kept in memory only")
 	}
-	svc, err := StartControl(nc, comms)
+	d.comm.index = NewControlIndex()
+	for _, c := range comms {
+		d.comm.index.Add(c)
+	}
+	svc, err := StartControlIndex(nc, d.comm.index)
 	if err != nil {
 		return err
 	}

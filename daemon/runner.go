@@ -33,7 +33,9 @@ type Estimator struct {
 	period  time.Duration // the plant's sample time
 	engine  *Engine
 	metrics *EstimatorMetrics
-	signals []signal // the engine's signals: inputs, then outputs
+	signals []signal             // the engine's signals: inputs, then outputs
+	subs    []*nats.Subscription // one per signal while subscribed (dispatch.go)
+	fleet   *fleetLease          // its ownership in a fleet (fleet_run.go); nil outside one
 
 	gains   atomic.Pointer[config.GainsFile]
 	lease   atomic.Pointer[lease.Lease] // this estimator's, once taken or awaited
@@ -78,6 +80,7 @@ func newEstimator(d *Daemon, spec PlantSpec, active *estimator.Prepared) *Estima
 		est:       eng.NewEstimate(),
 		lastReady: -1,
 	}
+	e.est.Instance = d.opts.Instance
 	e.gains.Store(spec.Gains)
 	e.gainsOK.Store(true)
 	met.SetReady(false)
@@ -126,35 +129,6 @@ func (e *Estimator) Subject() string { return e.subject }
 
 // Period returns its tick period, the plant's sample time.
 func (e *Estimator) Period() time.Duration { return e.period }
-
-// Pending limits of a signal's subscription: the samples received but not
-// yet handed to the engine. The byte limit is above the largest payload a
-// server lets through by default (1 MiB), so that one long payload reaches
-// DecodeSample and is counted as oversize, not dropped unseen. A backlog is only ever a symptom of a process
-// that cannot keep up, and its samples are mostly too old to be used (only
-// the newest per tick is), so it is kept short: beyond it the client drops
-// samples and reports a slow consumer, instead of the client's defaults
-// (512 Ki messages, 64 MiB per subscription) letting memory grow. 256
-// samples are 25 s of a 10 Hz signal, a quarter second of a 1 kHz one.
-const (
-	samplePendingMsgs  = 256
-	samplePendingBytes = 2 << 20
-)
-
-// subscribe makes one subscription per wired signal.
-func (e *Estimator) subscribe(nc *nats.Conn) error {
-	for i := range e.signals {
-		s := &e.signals[i]
-		sub, err := nc.Subscribe(s.subject, func(msg *nats.Msg) { e.receive(s, msg.Data) })
-		if err == nil {
-			err = sub.SetPendingLimits(samplePendingMsgs, samplePendingBytes)
-		}
-		if err != nil {
-			return fmt.Errorf("estimator %s: subscribing to %s: %w", e.name, s.subject, err)
-		}
-	}
-	return nil
-}
 
 // receive decodes one payload of signal s and offers it to the engine, which
 // counts it; a payload that does not decode is counted here.
@@ -220,7 +194,13 @@ func (e *Estimator) tick(t Tick) {
 	d := e.d
 	e.engine.Tick(t.Due, e.est)
 	e.payload = e.est.AppendJSON(e.payload[:0])
-	connected := d.busConnected() && e.mayPublish()
+	var ours bool
+	if e.fleet != nil {
+		ours = e.fleetTick() // every tick: it also checkpoints
+	} else {
+		ours = e.mayPublish()
+	}
+	connected := d.busConnected() && ours
 	if connected {
 		// With the reconnect buffer off, Publish fails rather than queue
 		// when the connection dropped since IsConnected: nothing stale is

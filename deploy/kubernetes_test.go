@@ -294,7 +294,15 @@ func userProvided(t *testing.T) []string {
 }
 
 func TestKubernetesManifests(t *testing.T) {
-	k := loadKit(t, "kubernetes")
+	for _, dir := range []string{"kubernetes", "kubernetes-fleet"} {
+		t.Run(dir, func(t *testing.T) { checkKit(t, dir) })
+	}
+}
+
+// checkKit checks the Kubernetes kit in dir: the per-plant kit (one Deployment per plant) or the
+// fleet kit (one Deployment of daemons that take their plants from the fleet's bucket).
+func checkKit(t *testing.T, dir string) {
+	k := loadKit(t, dir)
 
 	// The kustomization lists every manifest, and only existing ones.
 	if k.kustomization.Kind == "" {
@@ -351,10 +359,15 @@ func metas[T any](xs []T, f func(T) objectMeta) []objectMeta {
 func checkDeployment(t *testing.T, d deployment, cms map[string]configMap, documented []string) {
 	name := "Deployment " + d.Metadata.Name
 	spec := d.Spec
-	if spec.Replicas == nil || *spec.Replicas != 1 {
+	fleet := len(spec.Template.Spec.Containers) == 1 && slices.ContainsFunc(spec.Template.Spec.Containers[0].Args,
+		func(a string) bool { return strings.HasPrefix(a, "--fleet=") })
+	switch {
+	case fleet && (spec.Replicas == nil || *spec.Replicas < 2):
+		t.Errorf("%s: a fleet wants at least 2 replicas (one takes over from another)", name)
+	case !fleet && (spec.Replicas == nil || *spec.Replicas != 1):
 		t.Errorf("%s: want replicas: 1 (an estimator is stateful per plant)", name)
 	}
-	if spec.Strategy.Type != "Recreate" {
+	if !fleet && spec.Strategy.Type != "Recreate" {
 		t.Errorf("%s: strategy %q, want Recreate (no two estimators of one plant side by side)", name, spec.Strategy.Type)
 	}
 	for k, v := range spec.Selector.MatchLabels {
@@ -458,7 +471,14 @@ func checkDeployment(t *testing.T, d deployment, cms map[string]configMap, docum
 		}
 		mounts[m.MountPath] = m.Name
 	}
-	if len(plants) == 0 {
+	switch {
+	case fleet && len(plants) > 0:
+		t.Errorf("%s: a fleet daemon takes its plants from the fleet's bucket, not plant files %v", name, plants)
+	case fleet && flags["--nats"] == "":
+		t.Errorf("%s: a fleet needs --nats (a NATS server with JetStream shared by the replicas)", name)
+	case fleet && flags["--metrics"] != "summary":
+		t.Errorf("%s: --metrics=%q, want summary for a fleet (few series per estimator)", name, flags["--metrics"])
+	case !fleet && len(plants) == 0:
 		t.Errorf("%s: no plant file in args", name)
 	}
 	for _, p := range plants {

@@ -1,6 +1,7 @@
 package deploy
 
 import (
+	"bytes"
 	"context"
 	"crypto/ecdsa"
 	"crypto/elliptic"
@@ -10,12 +11,14 @@ import (
 	"crypto/x509/pkix"
 	"encoding/pem"
 	"fmt"
+	"log/slog"
 	"math/big"
 	"net"
 	"os"
 	"path/filepath"
 	"slices"
 	"strings"
+	"sync"
 	"testing"
 	"time"
 
@@ -24,6 +27,7 @@ import (
 	"github.com/nats-io/nats.go/jetstream"
 	"github.com/nats-io/nats.go/micro"
 	"github.com/nats-io/nkeys"
+
 	"golang.org/x/crypto/bcrypt"
 	"gopkg.in/yaml.v3"
 
@@ -422,6 +426,24 @@ func (c *client) noViolations(t *testing.T, who string) {
 	}
 }
 
+// lockedBuffer is a bytes.Buffer safe for concurrent writers (a daemon's log).
+type lockedBuffer struct {
+	mu  sync.Mutex
+	buf bytes.Buffer
+}
+
+func (b *lockedBuffer) Write(p []byte) (int, error) {
+	b.mu.Lock()
+	defer b.mu.Unlock()
+	return b.buf.Write(p)
+}
+
+func (b *lockedBuffer) String() string {
+	b.mu.Lock()
+	defer b.mu.Unlock()
+	return b.buf.String()
+}
+
 // TestNATSPermissions starts a server from nats-1.conf (see start) with test credentials and
 // checks what each user may and may not do with the demo plant's subjects.
 func TestNATSPermissions(t *testing.T) {
@@ -682,6 +704,82 @@ func TestNATSPermissions(t *testing.T) {
 				t.Fatal(err)
 			}
 			dashboard.expectViolation(t, "Publish", subj)
+		}
+	})
+
+	t.Run("a fleet: the gains admin puts a plant, a fleet daemon runs it", func(t *testing.T) {
+		ctx, cancel := context.WithTimeout(context.Background(), 20*time.Second)
+		defer cancel()
+		store, err := surmise.OpenFleet(ctx, gainsAdmin.Conn, "site", 0, 0)
+		if err != nil {
+			t.Fatalf("gains-admin: opening the fleet: %v (server errors: %v)", err, gainsAdmin.pending())
+		}
+		// The hand-written cart, wired to the kit's plant subjects (pilot.>).
+		plant := bytes.ReplaceAll(readFile(t, filepath.Join("..", "testdata", "config", "double-integrator.yaml")), []byte("bench.cart."), []byte("pilot.cart."))
+		gains := readFile(t, filepath.Join("..", "testdata", "config", "double-integrator.gains.yaml"))
+		if _, _, err := store.Put(ctx, "double-integrator", plant, gains); err != nil {
+			t.Fatalf("gains-admin: put: %v", err)
+		}
+		var log lockedBuffer
+		seed, err := s.daemon.Seed()
+		if err != nil {
+			t.Fatal(err)
+		}
+		seedFile := filepath.Join(t.TempDir(), "nats.nk")
+		if err := os.WriteFile(seedFile, seed, 0o600); err != nil {
+			t.Fatal(err)
+		}
+		d, err := surmise.New(surmise.Options{
+			Bus:   surmise.BusOptions{URL: url, NKeyFile: seedFile, TLSCA: s.ca, TLSCert: s.cert, TLSKey: s.key},
+			Fleet: &surmise.FleetOptions{Name: "site", CheckpointEvery: 200 * time.Millisecond}, Instance: "pod-1",
+			Listen: "127.0.0.1:0", Notify: func(string) error { return nil },
+			Logger: slog.New(slog.NewTextHandler(&log, nil)),
+		})
+		if err != nil {
+			t.Fatal(err)
+		}
+		dctx, stop := context.WithCancel(context.Background())
+		done := make(chan error, 1)
+		go func() { done <- d.Run(dctx) }()
+		defer func() {
+			stop()
+			if err := <-done; err != nil {
+				t.Errorf("fleet daemon: %v", err)
+			}
+		}()
+		// The daemon owns the estimator (a lease) and checkpoints it: it read the files,
+		// took the lease and wrote the state bucket with the kit's permissions.
+		deadline := time.Now().Add(15 * time.Second)
+		for {
+			o, held, err1 := store.Owner(ctx, "double-integrator")
+			cp, err2 := store.Checkpoint(ctx, "double-integrator")
+			if held && o.Instance == "pod-1" && cp != nil && cp.Instance == "pod-1" {
+				break
+			}
+			if time.Now().After(deadline) {
+				t.Fatalf("no owner and checkpoint after 15 s: owner %+v held %v (%v), checkpoint %+v (%v)", o, held, err1, cp, err2)
+			}
+			time.Sleep(50 * time.Millisecond) // polling the bucket
+		}
+		if _, err := store.History(ctx, "double-integrator"); err != nil {
+			t.Errorf("gains-admin: history: %v", err)
+		}
+		if names, err := store.Names(ctx); err != nil || !slices.Equal(names, []string{"double-integrator"}) {
+			t.Errorf("gains-admin: names %v, %v", names, err)
+		}
+		gainsAdmin.noViolations(t, "gains-admin")
+		stop()
+		if err := <-done; err != nil {
+			t.Errorf("fleet daemon: %v", err)
+		}
+		done <- nil // for the deferred stop
+		if strings.Contains(log.String(), "ermission") {
+			t.Errorf("the fleet daemon met permission errors:\n%s", log.String())
+		}
+		dctx2, cancel2 := context.WithTimeout(ctx, 2*time.Second)
+		defer cancel2()
+		if _, err := surmise.OpenFleet(dctx2, dashboard.Conn, "site", 0, 0); err == nil {
+			t.Error("the dashboard opened the fleet's buckets")
 		}
 	})
 

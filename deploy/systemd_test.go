@@ -19,7 +19,7 @@ const (
 )
 
 // daemonFlags are the flags of `surmise run` that take a value (cmd/surmise/run.go).
-var daemonFlags = []string{"--nats", "--creds", "--nkey", "--tls-ca", "--tls-cert", "--tls-key", "--listen", "--log-format", "--state-dir"}
+var daemonFlags = []string{"--nats", "--creds", "--nkey", "--tls-ca", "--tls-cert", "--tls-key", "--listen", "--log-format", "--state-dir", "--fleet", "--metrics", "--instance"}
 
 // unitWithStub copies the unit into a temporary directory with ExecStart pointing at an
 // executable stub script, and returns the copy's path. systemd-analyze verify refuses a unit

@@ -254,7 +254,10 @@ func ctlRequest(ctx context.Context, f ctlFlags, msg *nats.Msg) (*nats.Msg, erro
 		case errors.Is(err, nats.ErrNoResponders):
 			return fmt.Errorf("no daemon answers on %s at %s: %w", msg.Subject, where, errTryNext)
 		case errors.Is(err, context.DeadlineExceeded):
-			return &exitError{code: 1, msg: fmt.Sprintf("no reply on %s at %s within %v", msg.Subject, where, f.timeout)}
+			// Every daemon listens on surmise.control.*.<verb> and only
+			// the one that runs the estimator answers: silence means
+			// "not here".
+			return fmt.Errorf("no reply on %s at %s within %v (a daemon answers only for the estimators it runs): %w", msg.Subject, where, f.timeout, errTryNext)
 		case err != nil && strings.Contains(strings.ToLower(err.Error()), "permissions violation"):
 			return &exitError{code: 1, msg: fmt.Sprintf("%s at %s: not allowed to call the control service: %v (log in with --creds, --nkey or --user-file)", msg.Subject, where, err)}
 		case err != nil:

@@ -232,7 +232,10 @@ func TestCtlEndToEnd(t *testing.T) {
 		{[]string{"cart", "promote"}, "cart promote refused (409): no candidate gain set runs in shadow"},
 		{[]string{"cart", "reset", "--state", "speed=1"}, `refused (400): reset refused`},
 		{[]string{"cart", "load", plantPathFor(c, "cart.yaml")}, "refused (422): gains file " + plantPathFor(c, "cart.yaml") + " (sent over the bus) refused\n  " + plantPathFor(c, "cart.yaml") + ":"},
-		{[]string{"trolley", "status"}, "no daemon answers on surmise.control.trolley.status"},
+		// No daemon runs it: every daemon listens on
+		// surmise.control.*.status, and only the one that runs an
+		// estimator replies.
+		{[]string{"trolley", "status", "--timeout", "500ms"}, "no reply on surmise.control.trolley.status"},
 	} {
 		_, errOut, code := c.ctl(t, r.args...)
 		if code != 1 || !strings.Contains(errOut, r.want) {

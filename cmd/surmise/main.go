@@ -35,6 +35,7 @@ func verbs() []verb {
 	return []verb{
 		{"check", "report on a plant's model, its observability and its gain sets", runCheck},
 		{"ctl", "ask a running daemon for status, load gains, promote, roll back, reset", runCtl},
+		{"fleet", "put, list, show and remove the plants of a fleet in its JetStream bucket", runFleet},
 		{"demo", "run the whole tool on an invented pilot plant, with no other service", runDemo},
 		{"design", "design observer or Kalman gains and write the gains file", runDesign},
 		{"noise", "estimate the process and measurement noise from a recording (autocovariance least squares)", runNoise},

@@ -19,6 +19,7 @@ import (
 )
 
 const runSynopsis = `[flags] PLANT.yaml [PLANT.yaml …]
+       surmise run --fleet NAME --nats URL [flags]
 
 Runs one estimator per plant file on the NATS bus: samples arrive on the
 subjects the plant file wires, one estimate per sample period leaves on
@@ -50,6 +51,11 @@ names the first; with --standby it waits, ticking but publishing nothing,
 and takes over when the first stops or its lease lapses (about 6 s after it
 died).
 
+With --fleet NAME and no plant files it joins the fleet NAME: it runs its
+share of the estimators stored with 'surmise fleet put', one daemon per
+estimator (a lease in the fleet's bucket), takes over those of a daemon that
+stops within about 8 s, and starts each from its owner's last checkpoint.
+
 SIGINT or SIGTERM stops it after the tick in progress.`
 
 // runFlags are the flags of `surmise run`. The names are fixed: the systemd
@@ -61,6 +67,8 @@ type runFlags struct {
 	logFormat, logLevel string
 	stateDir            string
 	standby             bool
+	metrics             string
+	fleet, instance     string
 }
 
 func runRun(ctx context.Context, e *env, args []string) error {
@@ -73,18 +81,28 @@ func runRun(ctx context.Context, e *env, args []string) error {
 	flags.StringVar(&f.logLevel, "log-level", "info", "log `LEVEL`: debug, info, warn or error")
 	flags.BoolVar(&f.standby, "standby", false, "when another daemon runs an estimator of these plant files on the bus, wait and take over when it stops, instead of refusing to start")
 	flags.StringVar(&f.stateDir, "state-dir", "", "`DIRECTORY` for the embedded server's JetStream store (default: a temporary one, removed at exit)")
+	flags.StringVar(&f.metrics, "metrics", "full", "per-estimator metric `LEVEL`: full (every series) or summary (health only, for many estimators)")
+	flags.StringVar(&f.fleet, "fleet", "", "join the fleet `NAME`: run its share of the estimators of its bucket instead of plant files")
+	flags.StringVar(&f.instance, "instance", "", "`NAME` of this daemon in its estimates and its fleet (default host-pid)")
 	pos, err := parseArgs(flags, args)
 	if err != nil {
 		return err
 	}
-	if len(pos) == 0 {
-		return usageError("want at least one plant file")
+	switch {
+	case f.fleet == "" && len(pos) == 0:
+		return usageError("want at least one plant file, or --fleet NAME")
+	case f.fleet != "" && len(pos) > 0:
+		return usageError("--fleet takes its plants from the fleet's bucket: no plant files")
 	}
 	explicit := map[string]bool{}
 	flags.Visit(func(fl *flag.Flag) { explicit[fl.Name] = true })
 	log, err := newLogger(e.stderr, f.logFormat, f.logLevel)
 	if err != nil {
 		return err
+	}
+	level, err := daemon.ParseMetricsLevel(f.metrics)
+	if err != nil {
+		return usageError("--metrics: %v", err)
 	}
 	if f.bus.url != "" && explicit["nats-port"] {
 		return usageError("--nats-port is the embedded server's port; it cannot be combined with --nats")
@@ -93,8 +111,14 @@ func runRun(ctx context.Context, e *env, args []string) error {
 		return usageError("--creds, --nkey, --user-file and the --tls-* flags are for a server given with --nats")
 	}
 
-	plants, err := loadPlants(e.stderr, pos)
-	if err != nil {
+	if f.instance == "" {
+		f.instance = daemon.DefaultInstance()
+	}
+	var plants []daemon.PlantSpec
+	var fleet *daemon.FleetOptions
+	if f.fleet != "" {
+		fleet = &daemon.FleetOptions{Name: f.fleet}
+	} else if plants, err = loadPlants(e.stderr, pos); err != nil {
 		return err
 	}
 
@@ -110,6 +134,9 @@ func runRun(ctx context.Context, e *env, args []string) error {
 		Logger:       log,
 		StateDir:     f.stateDir,
 		Standby:      f.standby,
+		Metrics:      level,
+		Fleet:        fleet,
+		Instance:     f.instance,
 		Started: func(ep daemon.Endpoints) {
 			where := "connecting to " + daemon.RedactURL(ep.BusURL)
 			if ep.Embedded {
@@ -121,6 +148,9 @@ func runRun(ctx context.Context, e *env, args []string) error {
 			}
 			fmt.Fprintf(e.stdout, "bus:  %s\n", where)
 			fmt.Fprintf(e.stdout, "http: http://%s/ (live page)  /metrics  /healthz  /readyz\n", ep.HTTPAddr)
+			if fleet != nil {
+				fmt.Fprintf(e.stdout, "fleet %s: instance %s\n", fleet.Name, f.instance)
+			}
 			for _, p := range plants {
 				fmt.Fprintf(e.stdout, "estimator %s: every %v, gains %q, estimates on %s\n",
 					p.Plant.Name, time.Duration(p.Plant.Model.Ts*float64(time.Second)), p.Gains.Active, daemon.EstimateSubject(p.Plant))
