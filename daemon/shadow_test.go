@@ -130,15 +130,39 @@ func shadowRig(t testing.TB, candidate string, dwell time.Duration) *cmRig {
 		simX0: []float64{4, 0.8}, seed: 2026, dwell: dwell})
 }
 
+// TestShadowSlowSetIsHonest checks that the slow placed set judges its
+// innovations with the covariance of its own gain: a consistent filter's NIS
+// has mean m (here 1) whatever its gain (SOURCES.md: nis-band, common
+// practice), so the windowed NIS mean of the last 200 of 600 ticks, averaged
+// over 40 seeded runs, lies near 1. The margin is empirical: over seeds 1–40
+// the 40 window means spread with a standard deviation of about 1.1 (their
+// innovations are strongly correlated), so their average has a standard
+// error of about 0.17, and [0.5, 1.5] is about three of them either side; a
+// set that published its design-time σ, or the Kalman filter's, from the
+// start would leave it.
+func TestShadowSlowSetIsHonest(t *testing.T) {
+	const runs = 40
+	sum := 0.0
+	for s := 1; s <= runs; s++ {
+		r := newCMRig(t, cmRigOptions{active: "slow", sets: []string{"slow", "kalman"}, simX0: []float64{4, 0.8}, seed: uint64(s)})
+		for k := 0; k < 600; k++ {
+			r.tick()
+		}
+		sum += r.metric("surmise_nis_window_mean", map[string]string{"estimator": "cart", "gains": "slow"})
+	}
+	if mean := sum / runs; !(mean >= 0.5 && mean <= 1.5) {
+		t.Errorf("the slow set's windowed NIS mean averages %.3f over %d runs, want within [0.5, 1.5]: its covariance is not its own", mean, runs)
+	}
+}
+
 // TestShadowCandidateIsMeasurablyBetter runs the slow placed set (observer
 // poles 0.995 and 0.99: time constants of 200 and 100 ticks) against the
 // Kalman filter in shadow on the same samples for 600 ticks, and compares
 // their windowed consistency over the last 200: the Kalman filter's mean
 // NIS lies in the 95 % chi-square band of a 200-tick window (SOURCES.md: nis-band; Bar-Shalom, Li
-// and Kirubarajan: 200·mean is χ²(200) for a consistent filter), and so does
-// the slow set's — it judges its innovations with the covariance of its own
-// gain, so it is honest about being worse — while the Kalman filter's
-// innovation RMS is less than half the slow set's. The
+// and Kirubarajan: 200·mean is χ²(200) for a consistent filter), while its
+// innovation RMS is less than half the slow set's (whose own honesty is
+// TestShadowSlowSetIsHonest's). The
 // candidate never changes the active estimate: a twin run without it
 // publishes the same numbers.
 func TestShadowCandidateIsMeasurablyBetter(t *testing.T) {
@@ -171,9 +195,10 @@ func TestShadowCandidateIsMeasurablyBetter(t *testing.T) {
 	if !(km >= lo && km <= hi) {
 		t.Errorf("the Kalman candidate's windowed NIS mean %v is outside [%v, %v]", km, lo, hi)
 	}
-	if !(sm >= lo && sm <= hi) {
-		t.Errorf("the slow set's windowed NIS mean %v is outside [%v, %v]: its covariance is not its own", sm, lo, hi)
-	}
+	// The slow set's innovations are far from white (its error decays over
+	// 100 to 200 ticks), so one 200-tick window of its NIS is not χ²(200)/200
+	// and its band says little: its honesty is judged over many runs
+	// instead (slowSetNISOverSeeds).
 	// The factor is empirical: with this seed the candidate's innovation
 	// RMS is 0.12 m against the slow set's 2.59 m (a twentieth); half is a
 	// wide margin for "measurably better".

@@ -60,10 +60,19 @@ const GateRelease = 10
 // its windowed NIS says, until a measurement is accepted again.
 const GateSuspect = 3
 
-// acquireTol is how close, in the same measure as settleTol, the a priori
-// covariance of an acquisition must come to the Kalman filter's steady state
-// before the fixed gain takes over. The hand-over need not wait for the last
-// digits: from there the fixed gain's own recursion carries the covariance.
+// acquireTol is the margin of the hand-over from an acquisition to the fixed
+// gain. The fixed gain takes over as soon as the a priori covariance of the
+// acquisition lies below the set's own steady state, P⁻ ⪯ (1 + acquireTol)·P̄
+// in the positive semidefinite order (P̄ the steady-state a priori covariance
+// of the full-pattern gain), or comes within acquireTol of the Kalman
+// filter's steady state, in the same measure as settleTol. The first test is
+// what lets a set with deliberately slow poles take over early: the
+// fixed-gain recursion P ↦ A_cl·P·A_clᵀ + Q + L·R·Lᵀ is monotone in P, so
+// from a P⁻ below P̄ the error covariance of the fixed gain stays below P̄
+// (within the margin) with every output present, and the hand-over promises
+// nothing the set cannot keep. A Kalman filter's covariance only reaches
+// that order at its own steady state, which for a slowly drifting state can
+// take many minutes; the hand-over need not wait for it.
 const acquireTol = 0.05
 
 // settleTol is how close, relative to the steady state's own standard
@@ -151,6 +160,7 @@ type Filter struct {
 	P, Pn []float64 // n×n: the covariance of the published estimate, and scratch
 	pnext []float64 // n×n: prediction form, the a priori P of the next tick
 	tcl   []float64 // n×n: A − L·C_s
+	acqM  []float64 // n×n: scratch of the hand-over test (psdBelow)
 	p0    []float64 // the initial covariance; nil when none was given or derived
 	cs    []float64 // p×n: the rows of C for the present outputs
 	cp    []float64 // p×n: C_s·P⁻
@@ -182,7 +192,7 @@ func NewFilter(pr *Prepared, x0 []float64, p0 mat.Symmetric) *Filter {
 		yhat: make([]float64, p), r: make([]float64, p), sv: make([]float64, p),
 		idx: make([]int, p), act: make([]int, p),
 		rs: make([]float64, p), z: make([]float64, p), chol: make([]float64, p*p),
-		P: make([]float64, n*n), Pn: make([]float64, n*n),
+		P: make([]float64, n*n), Pn: make([]float64, n*n), acqM: make([]float64, n*n),
 		pnext: make([]float64, n*n), tcl: make([]float64, n*n),
 		cs: make([]float64, p*n), cp: make([]float64, p*n), kt: make([]float64, p*n),
 		sfull: make([]float64, p*p), rr: make([]float64, p*p), h: make([]float64, p),
@@ -368,7 +378,7 @@ func (f *Filter) Step(u, y []float64, present Pattern) Outcome {
 	}
 	f.first = false
 	f.hasP, f.hasNext = false, false
-	if f.acq && covNear(f.P, pr.pss, f.n, acquireTol) {
+	if f.acq && (covNear(f.P, pr.pss, f.n, acquireTol) || (pr.setPrior != nil && psdBelow(f.P, pr.setPrior, f.n, 1+acquireTol, f.acqM))) {
 		f.acq = false
 	}
 
@@ -491,6 +501,52 @@ func covNear(p, ss []float64, n int, tol float64) bool {
 			if !(math.Abs(p[i*n+j]-ss[i*n+j]) <= tol) {
 				return false
 			}
+		}
+	}
+	return true
+}
+
+// psdBelow reports whether p ⪯ c·ss in the positive semidefinite order, that
+// is whether c·ss − p has no negative eigenvalue, by a Cholesky factorisation
+// of c·ss − p in the scratch m (n×n). A pivot within a rounding margin of
+// zero counts as zero (semidefinite), so p = ss with c = 1 passes. It
+// allocates nothing.
+func psdBelow(p, ss []float64, n int, c float64, m []float64) bool {
+	for i := 0; i < n*n; i++ {
+		m[i] = c*ss[i] - p[i]
+	}
+	for j := 0; j < n; j++ {
+		scale := c * math.Abs(ss[j*n+j])
+		d := m[j*n+j]
+		for k := 0; k < j; k++ {
+			d -= m[j*n+k] * m[j*n+k]
+		}
+		if !(d >= -1e-12*scale) { // negative, or NaN
+			return false
+		}
+		if d <= 1e-12*scale {
+			// A zero pivot: the rest of column j must vanish too.
+			for i := j + 1; i < n; i++ {
+				e := m[i*n+j]
+				for k := 0; k < j; k++ {
+					e -= m[i*n+k] * m[j*n+k]
+				}
+				if math.Abs(e) > 1e-9*math.Sqrt(scale*c*math.Abs(ss[i*n+i])) {
+					return false
+				}
+				m[i*n+j] = 0
+			}
+			m[j*n+j] = 0
+			continue
+		}
+		d = math.Sqrt(d)
+		m[j*n+j] = d
+		for i := j + 1; i < n; i++ {
+			e := m[i*n+j]
+			for k := 0; k < j; k++ {
+				e -= m[i*n+k] * m[j*n+k]
+			}
+			m[i*n+j] = e / d
 		}
 	}
 	return true
