@@ -259,7 +259,7 @@ func TestSampleSchema(t *testing.T) {
 func TestDivergedEstimateSchema(t *testing.T) {
 	s := compileSchema(t, "estimate.schema.json", "")
 	nan := math.NaN()
-	est := &daemon.Estimate{Time: time.Date(2026, 12, 4, 10, 0, 0, 0, time.UTC), Seq: 7, Status: daemon.StatusDiverged,
+	est := &daemon.Estimate{Estimator: "hotwater-loop", Instance: "bench-1", Time: time.Date(2026, 12, 4, 10, 0, 0, 0, time.UTC), Seq: 7, Status: daemon.StatusDiverged,
 		Gains: "poles-prediction", Fingerprint: "sha256:00", Form: "prediction",
 		Diverged: "state element_temp = 1e+04 is outside its range [0, 400]",
 		States:   []daemon.StateEstimate{{Name: "element_temp", Unit: "degC", Value: nan, Std: nan}},
