@@ -6,7 +6,7 @@ import (
 	"surmise/estimator"
 )
 
-// Late samples (DESIGN.md §3). A sample belongs to the first tick at or
+// Late samples. A sample belongs to the first tick at or
 // after its own time. One that arrives after that tick has run is fused at
 // its own time all the same while the tick lies within the signal's delay
 // horizon (config.Wire.MaxDelay): the engine keeps a ring of its past ticks
