@@ -10,6 +10,7 @@ import (
 	"log/slog"
 	"math"
 	"os"
+	"path/filepath"
 	"strings"
 	"sync"
 	"time"
@@ -108,12 +109,6 @@ func runDemo(ctx context.Context, e *env, args []string) error {
 		return err
 	}
 	defer os.RemoveAll(state)
-	ns, err := daemon.StartEmbedded(daemon.EmbeddedOptions{Port: f.natsPort, StoreDir: state + "/nats", ServerName: "surmise-demo"})
-	if err != nil {
-		return err
-	}
-	defer func() { ns.Shutdown(); ns.WaitForShutdown() }()
-
 	log := slog.New(slog.DiscardHandler)
 	if f.verbose {
 		log = slog.New(slog.NewTextHandler(e.stderr, &slog.HandlerOptions{Level: slog.LevelInfo}))
@@ -121,7 +116,8 @@ func runDemo(ctx context.Context, e *env, args []string) error {
 	started := make(chan daemon.Endpoints, 1)
 	d, err := daemon.New(daemon.Options{
 		Plants:           []daemon.PlantSpec{{Plant: runPlant, Gains: runGains, GainsBytes: demoGainsYAML}},
-		Bus:              daemon.BusOptions{Embedded: ns, Name: "surmise-demo-daemon"},
+		Bus:              daemon.BusOptions{Name: "surmise-demo-daemon"},
+		EmbeddedPort:     f.natsPort, // the daemon's own server, locked as `surmise run` locks it
 		Listen:           f.listen,
 		Logger:           log,
 		StateDir:         state,
@@ -144,7 +140,14 @@ func runDemo(ctx context.Context, e *env, args []string) error {
 		return err
 	}
 
-	nc, err := nats.Connect(ns.ClientURL(), nats.InProcessServer(ns), nats.Name("surmise-demo"))
+	// The simulated plant and the watch log in as the local user, whose
+	// password the daemon wrote beside its server's URL: anonymous clients
+	// of the demo's server have only what they have on any embedded server.
+	user, password, err := daemon.ReadUserFile(filepath.Join(ep.LocalAccess, daemon.LocalUserFile))
+	if err != nil {
+		return fmt.Errorf("the demo's own access to its server: %w", err)
+	}
+	nc, err := nats.Connect(ep.BusURL, nats.UserInfo(user, password), nats.Name("surmise-demo"))
 	if err != nil {
 		return err
 	}
@@ -223,7 +226,7 @@ func demoPlant() (*config.Plant, *config.GainsFile, error) {
 // describeDemo prints what runs and where.
 func describeDemo(w io.Writer, plant *config.Plant, gains *config.GainsFile, ep daemon.Endpoints, f demoFlags, took time.Duration) {
 	fmt.Fprintf(w, "surmise demo: the invented 40-litre hot-water loop, simulated and estimated (started in %v)\n", took.Round(time.Millisecond))
-	fmt.Fprintf(w, "NATS      %s (in-process server, loopback only)\n", ep.BusURL)
+	fmt.Fprintf(w, "NATS      %s (in-process server, loopback only; control and JetStream need the local user)\n", ep.BusURL)
 	ts := time.Duration(plant.Model.Ts * float64(time.Second))
 	speed := ""
 	if f.speed != 1 {
@@ -243,9 +246,9 @@ func describeDemo(w io.Writer, plant *config.Plant, gains *config.GainsFile, ep 
 		fmt.Fprintf(w, "            shadow %q on %s\n", gains.Candidate, daemon.ShadowSubject(est))
 	}
 	fmt.Fprintf(w, "HTTP      http://%s/  (live page)   /metrics   /healthz   /readyz\n", ep.HTTPAddr)
-	fmt.Fprintf(w, "watch     nats sub --server %s '%s.>'   (any NATS client)\n", ep.BusURL, strings.TrimSuffix(est, ".estimate"))
+	fmt.Fprintf(w, "watch     nats sub --server %s '%s'   (any NATS client, no credentials: estimates are readable by all local clients)\n", ep.BusURL, est)
 	if f.speed == 1 {
-		fmt.Fprintf(w, "record    surmise record --nats %s --subjects 'pilot.hwl.>,%s' --out demo.jsonl\n", ep.BusURL, plant.TruthSubject(">"))
+		fmt.Fprintf(w, "record    surmise record --subjects 'pilot.hwl.>,%s' --out demo.jsonl   (finds the server and its local user by itself)\n", plant.TruthSubject(">"))
 		fmt.Fprintf(w, "replay    surmise replay testdata/plants/hotwater-loop.yaml --data demo.jsonl --report demo.html\n")
 	}
 	how := "interrupt (Ctrl-C) to stop"

@@ -9,6 +9,7 @@ import (
 	"net/http"
 	"os"
 	"os/exec"
+	"path/filepath"
 	"regexp"
 	"strings"
 	"sync/atomic"
@@ -113,8 +114,16 @@ func TestDemo(t *testing.T) {
 	if err := nc.Flush(); err != nil {
 		t.Fatal(err)
 	}
+	// The demo's server is locked like any embedded server: a client
+	// without credentials may read estimates but not call the control
+	// service; the local user, whose file the daemon wrote in its run
+	// directory, may.
+	if _, errOut, code := cli(t, "ctl", "--nats", url, "hotwater-loop", "status"); code == 0 || !strings.Contains(errOut, "not allowed") {
+		t.Errorf("ctl status without credentials: exit %d, %q; want a refusal", code, errOut)
+	}
+	userFile := filepath.Join(daemon.LocalRunDir(), url[strings.LastIndexByte(url, ':')+1:], daemon.LocalUserFile)
 	// The status names the SHA-256 of the built-in gains in effect.
-	if out, errOut, code := cli(t, "ctl", "--nats", url, "--json", "hotwater-loop", "status"); code != 0 {
+	if out, errOut, code := cli(t, "ctl", "--nats", url, "--user-file", userFile, "--json", "hotwater-loop", "status"); code != 0 {
 		t.Errorf("ctl status: exit %d: %s", code, errOut)
 	} else {
 		var st daemon.StatusReply
