@@ -19,8 +19,20 @@ import (
 // reply from this daemon, because on a shared bus another daemon may run it.
 // It is safe for concurrent use.
 type ControlIndex struct {
-	mu    sync.RWMutex
-	comms map[string]*Commissioner
+	mu     sync.RWMutex
+	comms  map[string]*Commissioner
+	serves func(name string) bool // nil: every estimator in the index
+}
+
+// ServeOnly makes the index answer for the estimator name only while
+// serves(name) is true: a standby daemon, or one whose lease lapsed in an
+// outage, stays silent like a daemon that does not run the estimator, so
+// that a promote or a reset reaches the daemon that publishes and no other.
+// serves is called from the connection's delivery goroutines.
+func (x *ControlIndex) ServeOnly(serves func(name string) bool) {
+	x.mu.Lock()
+	x.serves = serves
+	x.mu.Unlock()
 }
 
 // NewControlIndex returns an empty index.
@@ -43,11 +55,16 @@ func (x *ControlIndex) Remove(name string) {
 	x.mu.Unlock()
 }
 
-// Lookup returns the commissioner of the estimator name.
+// Lookup returns the commissioner of the estimator name, unless the index
+// does not serve it now (ServeOnly).
 func (x *ControlIndex) Lookup(name string) (*Commissioner, bool) {
 	x.mu.RLock()
 	c, ok := x.comms[name]
+	serves := x.serves
 	x.mu.RUnlock()
+	if ok && serves != nil && !serves(name) {
+		return nil, false
+	}
 	return c, ok
 }
 

@@ -109,6 +109,28 @@ func TestOneWriterPerEstimator(t *testing.T) {
 	if code, body := readyz(t, third); code != http.StatusServiceUnavailable || !strings.Contains(body, "standby") {
 		t.Errorf("standby's /readyz: %d %q, want 503 naming the standby", code, body)
 	}
+	// A control request reaches both daemons (no queue group); only the
+	// holder answers it, so a promote or a reset cannot land in the
+	// standby. Replies are collected for a second: a second one would come
+	// within milliseconds of the first on loopback.
+	inbox := nc.NewRespInbox()
+	replies, err := nc.SubscribeSync(inbox)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := nc.PublishRequest(daemon.ControlSubject(spec.Plant.Name, daemon.VerbStatus), inbox, nil); err != nil {
+		t.Fatal(err)
+	}
+	answered := 0
+	for deadline := time.Now().Add(time.Second); time.Now().Before(deadline); {
+		if _, err := replies.NextMsg(time.Until(deadline)); err == nil {
+			answered++
+		}
+	}
+	replies.Unsubscribe()
+	if answered != 1 {
+		t.Errorf("a status request was answered %d times with a daemon standing by, want once (by the holder)", answered)
+	}
 	mu.Lock()
 	for seq, n := range seqs {
 		if n > 1 {

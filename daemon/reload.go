@@ -731,6 +731,19 @@ func (d *Daemon) startCommissioning(g *Group, nc *nats.Conn) error {
 	for _, c := range comms {
 		d.comm.index.Add(c)
 	}
+	// The estimators of plant files are steered only through the daemon
+	// that holds their lease (a fleet's are added and removed with their
+	// ownership, fleet_run.go).
+	leased := make(map[string]*Estimator, len(d.estimators))
+	for _, e := range d.estimators {
+		if e.fleet == nil {
+			leased[e.name] = e
+		}
+	}
+	d.comm.index.ServeOnly(func(name string) bool {
+		e, ok := leased[name]
+		return !ok || e.mayPublish()
+	})
 	svc, err := StartControlIndex(nc, d.comm.index)
 	if err != nil {
 		return err
