@@ -100,8 +100,9 @@ const settleTol = 1e-3
 //   - Acquisition. From NewFilter or Reset with an initial covariance, and
 //     after a gate release, the filter runs as the time-varying Kalman
 //     filter of the model's Q and R, from that covariance, until its a
-//     priori covariance reaches the steady state of that Kalman filter;
-//     from then on it corrects with the set's fixed gain. The state and the
+//     priori covariance lies below the set's own steady state or reaches
+//     the Kalman filter's (acquireTol); from then on it corrects with the
+//     set's fixed gain. The state and the
 //     covariance carry over, so the hand-over makes no step. The optimal
 //     gain takes a start far from the truth in as few ticks as the data
 //     allow, where a fixed gain designed for the steady state (often with
