@@ -5,8 +5,11 @@ import (
 	"context"
 	"math"
 	"sync"
+	"sync/atomic"
 	"testing"
 	"time"
+
+	"github.com/nats-io/nats.go"
 
 	"surmise/daemon"
 	"surmise/daemon/recording"
@@ -23,6 +26,7 @@ type rpLiveTick struct {
 	nis, nisMean float64
 	used         estimator.Pattern
 	innovations  []float64
+	late         int // output samples fused this tick after their own tick had run
 }
 
 func rpCopy(est *daemon.Estimate) rpLiveTick {
@@ -32,6 +36,7 @@ func rpCopy(est *daemon.Estimate) rpLiveTick {
 	}
 	for _, o := range est.Outputs {
 		tk.innovations = append(tk.innovations, o.Innovation)
+		tk.late += o.Late
 	}
 	return tk
 }
@@ -54,6 +59,13 @@ func rpClose(a, b float64) bool {
 // tick after the daemon's ticks, so that every sample arrives well inside
 // the interval of the tick it belongs to, for the daemon and the recorder
 // alike (the recorder's receive times are not the daemon's own).
+//
+// Late arrivals are part of it: for six ticks a second exchanger sample is
+// published beside the plant's, dated two ticks earlier (three quarters into
+// that interval, so newer than the plant's sample of it), as a sensor whose
+// messages take two periods would send it. It arrives after its own tick has
+// run, for the daemon and the recorder alike, and both fuse it there by a
+// re-run; so the ticks after it must agree too.
 func TestReplayEqualsLive(t *testing.T) {
 	if testing.Short() {
 		t.Skip("runs the daemon for about 8 s")
@@ -122,6 +134,29 @@ events:
 	if err != nil {
 		t.Fatal(err)
 	}
+	// The late exchanger samples: near the plant's latest, published just
+	// after the plant's sample of ticks 12 to 17 of the run.
+	hx := plant.Outputs[1]
+	var lastHX atomic.Uint64
+	hxSub, err := nc.Subscribe(hx.Subject, func(m *nats.Msg) {
+		if v, _, err := daemon.DecodeSample(m.Data, time.Now()); err == nil {
+			lastHX.Store(math.Float64bits(v))
+		}
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	lateDone := make(chan struct{})
+	go func() {
+		defer close(lateDone)
+		for i := 12; i < 18; i++ {
+			at := start.Add(time.Duration(i)*ts + ts/10)
+			time.Sleep(time.Until(at)) // pacing a publisher, not waiting for a condition
+			stamp := start.Add(time.Duration(i-2)*ts + ts/4)
+			v := math.Float64frombits(lastHX.Load()) + 0.02
+			nc.Publish(hx.Subject, simplant.AppendPayload(nil, v, stamp))
+		}
+	}()
 	plantTime := 40 * time.Second
 	if _, err := simplant.Publish(context.Background(), nc, simplant.NewStream(sim), simplant.PublishOptions{
 		Clock: simplant.Clock{Start: start, Speed: speed},
@@ -139,6 +174,8 @@ events:
 		}
 		return nil
 	})
+	<-lateDone
+	hxSub.Unsubscribe()
 	if err := recorder.Stop(); err != nil {
 		t.Fatal(err)
 	}
@@ -175,12 +212,14 @@ events:
 		t.Fatalf("%d replayed ticks, %d live (a live tick missed?)", len(replayed), len(got))
 	}
 	statuses := map[string]int{}
+	lateFused := 0
 	for k := range got {
 		g, w := replayed[k], got[k]
 		statuses[w.status]++
-		if !g.time.Equal(w.time) || g.seq != w.seq || g.status != w.status || g.used != w.used || !rpClose(g.nis, w.nis) || !rpClose(g.nisMean, w.nisMean) {
-			t.Fatalf("tick %d: replay %v #%d %s used %b NIS %v (mean %v), live %v #%d %s used %b NIS %v (mean %v)",
-				k, g.time, g.seq, g.status, g.used, g.nis, g.nisMean, w.time, w.seq, w.status, w.used, w.nis, w.nisMean)
+		lateFused += w.late
+		if !g.time.Equal(w.time) || g.seq != w.seq || g.status != w.status || g.used != w.used || !rpClose(g.nis, w.nis) || !rpClose(g.nisMean, w.nisMean) || g.late != w.late {
+			t.Fatalf("tick %d: replay %v #%d %s used %b NIS %v (mean %v) late %d, live %v #%d %s used %b NIS %v (mean %v) late %d",
+				k, g.time, g.seq, g.status, g.used, g.nis, g.nisMean, g.late, w.time, w.seq, w.status, w.used, w.nis, w.nisMean, w.late)
 		}
 		for i := range w.states {
 			if !rpClose(g.states[i], w.states[i]) || !rpClose(g.stds[i], w.stds[i]) {
@@ -199,7 +238,10 @@ events:
 	if statuses["tracking"] == 0 || statuses["stale-input"] == 0 {
 		t.Errorf("statuses %v: want tracking and stale-input ticks", statuses)
 	}
-	t.Logf("%d ticks compared; statuses %v; %d messages recorded", len(got), statuses, len(br.Messages))
+	if lateFused != 6 {
+		t.Errorf("%d late samples fused at their own tick, want the 6 published late", lateFused)
+	}
+	t.Logf("%d ticks compared; statuses %v; %d late samples fused; %d messages recorded", len(got), statuses, lateFused, len(br.Messages))
 }
 
 var errNoTick = errorString("no such tick yet")
