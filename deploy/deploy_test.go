@@ -115,6 +115,7 @@ func TestRuleTestsCatchMutations(t *testing.T) {
 		{"overruns alert on a single overrun", "expr: rate(surmise_tick_overruns_total[5m]) > 0\n        for: 15m", "expr: rate(surmise_tick_overruns_total[5m]) > 0\n        for: 1m"},
 		{"refused reloads forgotten once the gauge recovers", "surmise_gain_last_reload_success == 0\n            or\n", "surmise_gain_last_reload_success == 0\n            and\n"},
 		{"bus alert with the wrong severity", "expr: surmise_bus_connected == 0\n        for: 2m\n        labels:\n          severity: critical", "expr: surmise_bus_connected == 0\n        for: 2m\n        labels:\n          severity: warning"},
+		{"diverged alert counts every status", `increase(surmise_ticks_total{status="diverged"}[15m])`, `increase(surmise_ticks_total[15m])`},
 		{"not-ready alert fires during start-up", "expr: surmise_ready == 0\n        for: 5m", "expr: surmise_ready == 0\n        for: 0m"},
 		{"bias alert fires on a passing transient", "expr: surmise_sensor_bias != 0\n        for: 2m", "expr: surmise_sensor_bias != 0\n        for: 0m"},
 		{"stuck alert pends too briefly", "expr: surmise_sensor_stuck == 1\n        for: 5m", "expr: surmise_sensor_stuck == 1\n        for: 1m"},
