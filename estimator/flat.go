@@ -72,20 +72,7 @@ func flatDot(a, b []float64) float64 {
 func flatMulVec(dst, a, x []float64) {
 	c := len(x)
 	for r := range dst {
-		row := a[r*c : r*c+c]
-		row = row[:len(x)]
-		var s0, s1, s2, s3 float64
-		i := 0
-		for ; i < len(x)-3; i += 4 {
-			s0 += row[i] * x[i]
-			s1 += row[i+1] * x[i+1]
-			s2 += row[i+2] * x[i+2]
-			s3 += row[i+3] * x[i+3]
-		}
-		for ; i < len(x); i++ {
-			s0 += row[i] * x[i]
-		}
-		dst[r] = (s0 + s1) + (s2 + s3)
+		dst[r] = flatDot(a[r*c:r*c+c], x)
 	}
 }
 
@@ -120,20 +107,7 @@ func flatMulVec2(dst, a, x, b, u []float64) {
 func flatMulVecAdd(dst, a, x []float64) {
 	c := len(x)
 	for r := range dst {
-		row := a[r*c : r*c+c]
-		row = row[:len(x)]
-		var s0, s1, s2, s3 float64
-		i := 0
-		for ; i < len(x)-3; i += 4 {
-			s0 += row[i] * x[i]
-			s1 += row[i+1] * x[i+1]
-			s2 += row[i+2] * x[i+2]
-			s3 += row[i+3] * x[i+3]
-		}
-		for ; i < len(x); i++ {
-			s0 += row[i] * x[i]
-		}
-		dst[r] += (s0 + s1) + (s2 + s3)
+		dst[r] += flatDot(a[r*c:r*c+c], x)
 	}
 }
 
