@@ -41,24 +41,18 @@ func runNoise(_ context.Context, e *env, args []string) error {
 	fs.IntVar(&lags, "lags", estimator.DefaultALSLags, "fit `N` autocovariance lags, 0 to N−1")
 	fs.IntVar(&segments, "segments", estimator.DefaultALSSegments, "split the recording into `N` disjoint segments for the standard errors (1: none)")
 	csvFlags(fs, &f)
-	pos, err := parseArgs(fs, args)
+	plantPath, err := parsePlantAndData(fs, args, &f)
 	if err != nil {
 		return err
-	}
-	if len(pos) != 1 {
-		return usageError("want one plant file, got %d arguments", len(pos))
-	}
-	if f.data == "" {
-		return usageError("--data FILE is required")
 	}
 	if lags < 1 || segments < 1 {
 		return usageError("--lags and --segments must be at least 1")
 	}
-	data, err := os.ReadFile(pos[0])
+	data, err := os.ReadFile(plantPath)
 	if err != nil {
 		return err
 	}
-	plant, err := config.ParsePlant(pos[0], data)
+	plant, err := config.ParsePlant(plantPath, data)
 	if err != nil {
 		return err
 	}
@@ -75,7 +69,7 @@ func runNoise(_ context.Context, e *env, args []string) error {
 	if out == "" {
 		return nil
 	}
-	written, err := config.RewriteNoise(pos[0], data, res.Q, res.R, noiseProvenance(plant, src.Name, res))
+	written, err := config.RewriteNoise(plantPath, data, res.Q, res.R, noiseProvenance(plant, src.Name, res))
 	if err != nil {
 		return err
 	}

@@ -70,15 +70,9 @@ func runReplay(_ context.Context, e *env, args []string) error {
 	fs.StringVar(&f.start, "start", "", "`TIME` of the first tick, RFC 3339 (default: chosen from the recording as described above)")
 	fs.StringVar(&f.end, "end", "", "`TIME` at or after which the last tick falls, RFC 3339 (default: the last sample's)")
 	fs.BoolVar(&f.allIssues, "all-issues", false, "print every issue of the recording, not only the first 100")
-	pos, err := parseArgs(fs, args)
+	plantPath, err := parsePlantAndData(fs, args, &f)
 	if err != nil {
 		return err
-	}
-	if len(pos) != 1 {
-		return usageError("want one plant file, got %d arguments", len(pos))
-	}
-	if f.data == "" {
-		return usageError("--data FILE is required")
 	}
 	var start, end time.Time
 	for _, tf := range []struct {
@@ -94,7 +88,7 @@ func runReplay(_ context.Context, e *env, args []string) error {
 		}
 		*tf.dst = t
 	}
-	plant, err := config.LoadPlant(pos[0])
+	plant, err := config.LoadPlant(plantPath)
 	if err != nil {
 		return err
 	}
@@ -258,6 +252,23 @@ func replayGainSets(plant *config.Plant, flags []string) ([]replayRun, error) {
 		}
 	}
 	return runs, nil
+}
+
+// parsePlantAndData parses the arguments of a verb that reads one plant
+// file and a recording (replay, noise): one positional plant file, and
+// --data required. It returns the plant file's path.
+func parsePlantAndData(fs *flag.FlagSet, args []string, f *replayFlags) (string, error) {
+	pos, err := parseArgs(fs, args)
+	if err != nil {
+		return "", err
+	}
+	if len(pos) != 1 {
+		return "", usageError("want one plant file, got %d arguments", len(pos))
+	}
+	if f.data == "" {
+		return "", usageError("--data FILE is required")
+	}
+	return pos[0], nil
 }
 
 // csvFlags registers the flags that say how to read a CSV recording.
