@@ -3,6 +3,8 @@ package daemon
 import (
 	"fmt"
 	"math"
+	"slices"
+	"sync"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -84,9 +86,6 @@ type Metrics struct {
 
 	// level says which series an estimator binds (metrics_level.go).
 	level MetricsLevel
-
-	// vecs lists every vector with an estimator label, for Remove.
-	vecs []*prometheus.MetricVec
 }
 
 // NewMetrics creates the daemon's metrics at MetricsFull and registers
@@ -172,16 +171,6 @@ func NewMetricsLevel(reg prometheus.Registerer, level MetricsLevel) *Metrics {
 		busDropped: prometheus.NewCounterVec(prometheus.CounterOpts{Name: "surmise_bus_dropped_total",
 			Help: "Messages dropped on the bus, by reason: pending-limit (a subscription's backlog was full), oversize (a publish larger than the server allows)."}, []string{labelReason}),
 	}
-	for _, v := range []*prometheus.CounterVec{m.ticks, m.overruns, m.nisOutOfBand, m.outliers, m.biasAlarms, m.received, m.rejected, m.reloads} {
-		m.vecs = append(m.vecs, v.MetricVec)
-	}
-	for _, v := range []*prometheus.GaugeVec{m.status, m.innovation, m.innovationRMS, m.nis, m.nisMean, m.nisLower,
-		m.nisUpper, m.sensorBias, m.sensorCUSUM, m.sensorStuck, m.lockedOut, m.dropout, m.measurementAge, m.state, m.stateStddev, m.gainsInfo, m.lastReload, m.ready} {
-		m.vecs = append(m.vecs, v.MetricVec)
-	}
-	for _, v := range []*prometheus.HistogramVec{m.compute, m.lateness, m.sampleToEst} {
-		m.vecs = append(m.vecs, v.MetricVec)
-	}
 	reg.MustRegister(m.ticks, m.overruns, m.compute, m.lateness, m.status, m.innovation, m.innovationRMS,
 		m.nis, m.nisMean, m.nisLower, m.nisUpper, m.nisOutOfBand, m.outliers, m.sensorBias, m.sensorCUSUM,
 		m.biasAlarms, m.sensorStuck, m.lockedOut, m.dropout, m.measurementAge, m.received,
@@ -257,6 +246,44 @@ type EstimatorMetrics struct {
 	lastReload                prometheus.Gauge
 	ready                     prometheus.Gauge
 	primary                   *GainsMetrics
+
+	own  seriesList // the series labelled with this estimator's name
+	mu   sync.Mutex // guards sets
+	sets map[*GainsMetrics]struct{}
+}
+
+// seriesList remembers series that were created, so that they can be
+// deleted one by one. Deleting by a partial label match instead scans every
+// series of a vector: at 10,000 estimators that made the start of each
+// estimator, and each removal, cost time in proportion to the whole process
+// (a quarter of an hour of CPU to start them all).
+type seriesList []func() bool
+
+// labelled is a metric vector of one kind: counters, gauges or histograms.
+type labelled[T any] interface {
+	WithLabelValues(lvs ...string) T
+	DeleteLabelValues(lvs ...string) bool
+}
+
+// bind returns the series of v with the label values lvs, created if need
+// be, and remembers it in l when it belongs to one estimator (the first
+// label of every per-estimator vector is the estimator; the series of the
+// whole process have it empty and are shared).
+func bind[T any](l *seriesList, v labelled[T], lvs ...string) T {
+	s := v.WithLabelValues(lvs...)
+	if lvs[0] != "" {
+		lvs = slices.Clone(lvs)
+		*l = append(*l, func() bool { return v.DeleteLabelValues(lvs...) })
+	}
+	return s
+}
+
+// delete deletes the series of l and empties it.
+func (l *seriesList) delete() {
+	for _, del := range *l {
+		del()
+	}
+	*l = nil
 }
 
 // Estimator binds the series of the estimator name: outputs, states and
@@ -276,29 +303,31 @@ func (m *Metrics) Estimator(name string, outputs, states, signals []string, gain
 		whole = ""
 	}
 	e := &EstimatorMetrics{
-		m:             m,
-		name:          name,
-		outputs:       append([]string(nil), outputs...),
-		states:        append([]string(nil), states...),
-		signals:       append([]string(nil), signals...),
-		lastStatus:    numStatuses,
-		overruns:      m.overruns.WithLabelValues(name),
-		compute:       m.compute.WithLabelValues(whole),
-		lateness:      m.lateness.WithLabelValues(whole),
-		latest:        m.sampleToEst.WithLabelValues(whole),
-		reloadOK:      m.reloads.WithLabelValues(name, "ok"),
-		reloadRefused: m.reloads.WithLabelValues(name, "refused"),
-		lastReload:    m.lastReload.WithLabelValues(name),
-		ready:         m.ready.WithLabelValues(name),
+		m:          m,
+		name:       name,
+		outputs:    append([]string(nil), outputs...),
+		states:     append([]string(nil), states...),
+		signals:    append([]string(nil), signals...),
+		lastStatus: numStatuses,
+		sets:       map[*GainsMetrics]struct{}{},
 	}
+	own := &e.own
+	e.overruns = bind(own, m.overruns, name)
+	e.compute = bind(own, m.compute, whole)
+	e.lateness = bind(own, m.lateness, whole)
+	e.latest = bind(own, m.sampleToEst, whole)
+	e.reloadOK = bind(own, m.reloads, name, "ok")
+	e.reloadRefused = bind(own, m.reloads, name, "refused")
+	e.lastReload = bind(own, m.lastReload, name)
+	e.ready = bind(own, m.ready, name)
 	for s := range numStatuses {
-		e.ticks[s] = m.ticks.WithLabelValues(whole, s.String())
-		e.status[s] = m.status.WithLabelValues(name, s.String())
+		e.ticks[s] = bind(own, m.ticks, whole, s.String())
+		e.status[s] = bind(own, m.status, name, s.String())
 	}
 	for _, o := range e.outputs {
 		var g prometheus.Gauge = dropped{}
 		if full {
-			g = m.measurementAge.WithLabelValues(name, o)
+			g = bind(own, m.measurementAge, name, o)
 			g.Set(math.NaN())
 		}
 		e.age = append(e.age, g)
@@ -307,10 +336,10 @@ func (m *Metrics) Estimator(name string, outputs, states, signals []string, gain
 		if !full {
 			sig = ""
 		}
-		e.received = append(e.received, m.received.WithLabelValues(whole, sig))
+		e.received = append(e.received, bind(own, m.received, whole, sig))
 		var byReason [numReasons]prometheus.Counter
 		for r := range numReasons {
-			byReason[r] = m.rejected.WithLabelValues(whole, sig, r.String())
+			byReason[r] = bind(own, m.rejected, whole, sig, r.String())
 		}
 		e.rejected = append(e.rejected, byReason)
 	}
@@ -379,8 +408,13 @@ func (e *EstimatorMetrics) Primary() *GainsMetrics { return e.primary }
 // Remove deletes every series of the estimator, of all its gain sets. The
 // EstimatorMetrics must not be used afterwards.
 func (e *EstimatorMetrics) Remove() {
-	for _, v := range e.m.vecs {
-		v.DeletePartialMatch(prometheus.Labels{labelEstimator: e.name})
+	e.own.delete()
+	e.mu.Lock()
+	sets := e.sets
+	e.sets = map[*GainsMetrics]struct{}{}
+	e.mu.Unlock()
+	for g := range sets {
+		g.series.delete()
 	}
 }
 
@@ -397,6 +431,8 @@ type GainsMetrics struct {
 	nis, nisMean, nisLower, nisUpper prometheus.Gauge
 	nisOutOfBand                     prometheus.Counter
 	state, stateStddev               []prometheus.Gauge
+	series                           seriesList // every series above, and surmise_gains_info
+	form, fingerprint                string     // of the surmise_gains_info series set, if any
 }
 
 // Gains binds the series of the gain set named gains (for a shadow set, or
@@ -406,42 +442,44 @@ type GainsMetrics struct {
 func (e *EstimatorMetrics) Gains(gains string) *GainsMetrics {
 	m := e.m
 	full := m.level == MetricsFull
+	var own *seriesList // set below, once g exists
 	nan := func(g prometheus.Gauge) prometheus.Gauge { g.Set(math.NaN()); return g }
 	detail := func(v *prometheus.GaugeVec, labels ...string) prometheus.Gauge {
 		if !full {
 			return dropped{}
 		}
-		return nan(v.WithLabelValues(labels...))
+		return nan(bind(own, v, labels...))
 	}
-	g := &GainsMetrics{
-		e:            e,
-		gains:        gains,
-		nis:          detail(m.nis, e.name, gains),
-		nisMean:      nan(m.nisMean.WithLabelValues(e.name, gains)),
-		nisLower:     nan(m.nisLower.WithLabelValues(e.name, gains)),
-		nisUpper:     nan(m.nisUpper.WithLabelValues(e.name, gains)),
-		nisOutOfBand: m.nisOutOfBand.WithLabelValues(e.name, gains),
-	}
+	g := &GainsMetrics{e: e, gains: gains}
+	own = &g.series
+	g.nis = detail(m.nis, e.name, gains)
+	g.nisMean = nan(bind(own, m.nisMean, e.name, gains))
+	g.nisLower = nan(bind(own, m.nisLower, e.name, gains))
+	g.nisUpper = nan(bind(own, m.nisUpper, e.name, gains))
+	g.nisOutOfBand = bind(own, m.nisOutOfBand, e.name, gains)
 	for _, o := range e.outputs {
 		g.innovation = append(g.innovation, detail(m.innovation, e.name, gains, o))
 		g.innovationRMS = append(g.innovationRMS, detail(m.innovationRMS, e.name, gains, o))
 		if full {
-			g.outliers = append(g.outliers, m.outliers.WithLabelValues(e.name, gains, o))
+			g.outliers = append(g.outliers, bind(own, m.outliers, e.name, gains, o))
 		} else {
 			g.outliers = append(g.outliers, m.outliers.WithLabelValues("", "", ""))
 		}
-		g.bias = append(g.bias, m.sensorBias.WithLabelValues(e.name, gains, o))
-		g.cusum = append(g.cusum, m.sensorCUSUM.WithLabelValues(e.name, gains, o))
-		g.stuck = append(g.stuck, m.sensorStuck.WithLabelValues(e.name, gains, o))
-		g.locked = append(g.locked, m.lockedOut.WithLabelValues(e.name, gains, o))
-		g.drop = append(g.drop, m.dropout.WithLabelValues(e.name, gains, o))
-		g.biasAlarms = append(g.biasAlarms, m.biasAlarms.WithLabelValues(e.name, gains, o))
+		g.bias = append(g.bias, bind(own, m.sensorBias, e.name, gains, o))
+		g.cusum = append(g.cusum, bind(own, m.sensorCUSUM, e.name, gains, o))
+		g.stuck = append(g.stuck, bind(own, m.sensorStuck, e.name, gains, o))
+		g.locked = append(g.locked, bind(own, m.lockedOut, e.name, gains, o))
+		g.drop = append(g.drop, bind(own, m.dropout, e.name, gains, o))
+		g.biasAlarms = append(g.biasAlarms, bind(own, m.biasAlarms, e.name, gains, o))
 		g.alarmsSeen = append(g.alarmsSeen, 0)
 	}
 	for _, s := range e.states {
 		g.state = append(g.state, detail(m.state, e.name, gains, s))
 		g.stateStddev = append(g.stateStddev, detail(m.stateStddev, e.name, gains, s))
 	}
+	e.mu.Lock()
+	e.sets[g] = struct{}{}
+	e.mu.Unlock()
 	return g
 }
 
@@ -500,15 +538,21 @@ func (g *GainsMetrics) SetStates(x, stddev []float64) {
 // SetInfo sets surmise_gains_info for this gain set, replacing the series
 // of an earlier form or fingerprint.
 func (g *GainsMetrics) SetInfo(form, fingerprint string) {
-	g.e.m.gainsInfo.DeletePartialMatch(prometheus.Labels{labelEstimator: g.e.name, labelGains: g.gains})
-	g.e.m.gainsInfo.WithLabelValues(g.e.name, g.gains, form, fingerprint).Set(1)
+	if g.form == form && g.fingerprint == fingerprint && g.form != "" {
+		return
+	}
+	if g.form != "" {
+		g.e.m.gainsInfo.DeleteLabelValues(g.e.name, g.gains, g.form, g.fingerprint)
+	}
+	bind(&g.series, g.e.m.gainsInfo, g.e.name, g.gains, form, fingerprint).Set(1)
+	g.form, g.fingerprint = form, fingerprint
 }
 
 // Remove deletes the series of this gain set (after a shadow set is dropped
 // or a promoted set replaced). The GainsMetrics must not be used afterwards.
 func (g *GainsMetrics) Remove() {
-	labels := prometheus.Labels{labelEstimator: g.e.name, labelGains: g.gains}
-	for _, v := range g.e.m.vecs {
-		v.DeletePartialMatch(labels)
-	}
+	g.series.delete()
+	g.e.mu.Lock()
+	delete(g.e.sets, g)
+	g.e.mu.Unlock()
 }
