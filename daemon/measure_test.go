@@ -1,6 +1,7 @@
 package daemon_test
 
 import (
+	"bytes"
 	"fmt"
 	"io"
 	"math/rand/v2"
@@ -134,7 +135,7 @@ func TestMeasureLatency(t *testing.T) {
 
 // scaleModel is a stable random model of 10 states, 3 inputs and 2 outputs
 // (seeded), with its steady-state Kalman gains, for the scale measurement.
-func scaleModel(t *testing.T, ts time.Duration) (*estimator.Model, *estimator.GainSet) {
+func scaleModel(t testing.TB, ts time.Duration) (*estimator.Model, *estimator.GainSet) {
 	t.Helper()
 	const n, m, p = 10, 3, 2
 	rng := rand.New(rand.NewPCG(1, 2))
@@ -228,6 +229,31 @@ func profileWindow(t *testing.T, count int) (stop func()) {
 	}
 }
 
+// processCPU returns the user and system CPU time of the process pid so far,
+// from /proc/PID/stat (fields 14 and 15, in clock ticks of 1/100 s: the
+// USER_HZ of every Linux architecture Go supports).
+func processCPU(t *testing.T, pid int) time.Duration {
+	t.Helper()
+	b, err := os.ReadFile(fmt.Sprintf("/proc/%d/stat", pid))
+	if err != nil {
+		t.Fatal(err)
+	}
+	// The command name, field 2, is in parentheses and may hold spaces.
+	f := strings.Fields(string(b[bytes.LastIndexByte(b, ')')+1:]))
+	if len(f) < 13 {
+		t.Fatalf("/proc/%d/stat: %q", pid, b)
+	}
+	var ticks int64
+	for _, v := range f[11:13] { // fields 14 and 15 counted from 1, after pid and comm
+		n, err := strconv.ParseInt(v, 10, 64)
+		if err != nil {
+			t.Fatalf("/proc/%d/stat: %v", pid, err)
+		}
+		ticks += n
+	}
+	return time.Duration(ticks) * 10 * time.Millisecond
+}
+
 // cpuTime returns the user and system CPU time of this process so far.
 func cpuTime(t *testing.T) time.Duration {
 	t.Helper()
@@ -247,6 +273,11 @@ func cpuTime(t *testing.T) time.Duration {
 // ticks, goroutines, heap, and the size and time of one scrape of /metrics.
 // The metrics are at the summary level of a fleet process unless
 // SURMISE_METRICS=full.
+//
+// With SURMISE_SCALE_BUS=nats-server the daemon connects to a nats-server
+// process with JetStream (on PATH) instead of its embedded server, as a
+// fleet's daemons do (run --fleet needs --nats): the daemon's CPU is then
+// its own, and the server's is reported beside it.
 //
 // Goals, which fail the test when missed: fewer than 1,000 goroutines in
 // the process at any size (they must not grow with the estimators), no
@@ -289,8 +320,23 @@ func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, cou
 			t.Fatalf("SURMISE_METRICS: %v", err)
 		}
 	}
-	r := startDaemon(t, daemon.Options{Plants: scalePlants(md, set, count, ts), EmbeddedPort: -1,
-		Registry: reg, Logger: discardLogger(), Metrics: level})
+	opts := daemon.Options{Plants: scalePlants(md, set, count, ts), Registry: reg, Logger: discardLogger(), Metrics: level}
+	var server *externalServer
+	switch bus := os.Getenv("SURMISE_SCALE_BUS"); bus {
+	case "", "embedded":
+		opts.EmbeddedPort = -1
+	case "nats-server":
+		port := freePort(t)
+		server = startExternal(t, natsServerBinary(t), port, "-js", "-sd", t.TempDir())
+		opts.Bus = daemon.BusOptions{URL: fmt.Sprintf("nats://127.0.0.1:%d", port)}
+	default:
+		t.Fatalf("SURMISE_SCALE_BUS=%q: want embedded or nats-server", bus)
+	}
+	r := startDaemon(t, opts)
+	busURL := r.ep.BusURL
+	if server != nil {
+		busURL = opts.Bus.URL
+	}
 
 	// Ticks are counted by the in-process hook, not from the registry: a
 	// Gather of this many series takes seconds, holds the metric vectors'
@@ -317,7 +363,7 @@ func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, cou
 	defer remove()
 
 	gen := exec.Command(os.Args[0], "-test.run=^TestLoadGenerator$", "-test.v")
-	gen.Env = append(os.Environ(), fmt.Sprintf("SURMISE_LOADGEN=%s,%d,%v", r.ep.BusURL, count, ts))
+	gen.Env = append(os.Environ(), fmt.Sprintf("SURMISE_LOADGEN=%s,%d,%v", busURL, count, ts))
 	gen.Stdout, gen.Stderr = t.Output(), t.Output()
 	if err := gen.Start(); err != nil {
 		t.Fatal(err)
@@ -364,9 +410,16 @@ func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, cou
 	}
 	ticks0, missed0 := ticks.Load(), missed.Load()
 	stopProfile := profileWindow(t, count)
+	var serverCPU0, serverCPU1 time.Duration
+	if server != nil {
+		serverCPU0 = processCPU(t, server.cmd.Process.Pid)
+	}
 	cpu0, wall0 := cpuTime(t), time.Now()
 	time.Sleep(d) // the measurement window
 	cpu1, wall1 := cpuTime(t), time.Now()
+	if server != nil {
+		serverCPU1 = processCPU(t, server.cmd.Process.Pid)
+	}
 	stopProfile()
 	ticks1, missed1 := ticks.Load(), missed.Load()
 	var statuses []string
@@ -390,11 +443,15 @@ func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, cou
 
 	wall := wall1.Sub(wall0)
 	cores := (cpu1 - cpu0).Seconds() / wall.Seconds()
+	where := "the daemon with its embedded server"
+	if server != nil {
+		where = fmt.Sprintf("the daemon alone; the nats-server process %.3f cores", (serverCPU1-serverCPU0).Seconds()/wall.Seconds())
+	}
 	due := float64(count) * wall.Seconds() / ts.Seconds()
 	ticked, missedIn := ticks1-ticks0, missed1-missed0
 	load, _ := os.ReadFile("/proc/loadavg")
-	t.Logf("%d estimators (10 states, 3 inputs, 2 outputs) at %v, metrics %s, %.0f samples/s offered, for %v: CPU %.3f cores; ticks %d run and %d missed of about %.0f due; by status: %s; live heap %.1f MiB, %d goroutines, %d GC cycles in the window; registry %d series, one scrape of /metrics %.1f MiB in %v; load average %s",
-		count, ts, level, float64(5*count)/ts.Seconds(), wall.Round(time.Millisecond), cores, ticked, missedIn, due,
+	t.Logf("%d estimators (10 states, 3 inputs, 2 outputs) at %v, metrics %s, %.0f samples/s offered, for %v: CPU %.3f cores (%s); ticks %d run and %d missed of about %.0f due; by status: %s; live heap %.1f MiB, %d goroutines, %d GC cycles in the window; registry %d series, one scrape of /metrics %.1f MiB in %v; load average %s",
+		count, ts, level, float64(5*count)/ts.Seconds(), wall.Round(time.Millisecond), cores, where, ticked, missedIn, due,
 		strings.Join(statuses, ", "), float64(ms.HeapAlloc)/(1<<20), goroutines, gcs, series,
 		float64(scrapeBytes)/(1<<20), scrapeTook.Round(time.Millisecond), strings.TrimSpace(string(load)))
 	// Every due tick is run or counted missed (the window's edges blur the

@@ -49,11 +49,12 @@ type externalServer struct {
 	done chan struct{}
 }
 
-// startExternal starts nats-server on 127.0.0.1:port and waits until it
-// accepts clients. The test's cleanup kills it if it still runs.
-func startExternal(t *testing.T, bin string, port int) *externalServer {
+// startExternal starts nats-server on 127.0.0.1:port, with the further
+// arguments args, and waits until it accepts clients. The test's cleanup
+// kills it if it still runs.
+func startExternal(t *testing.T, bin string, port int, args ...string) *externalServer {
 	t.Helper()
-	cmd := exec.Command(bin, "-a", "127.0.0.1", "-p", strconv.Itoa(port))
+	cmd := exec.Command(bin, append([]string{"-a", "127.0.0.1", "-p", strconv.Itoa(port)}, args...)...)
 	cmd.Stdout, cmd.Stderr = t.Output(), t.Output()
 	if err := cmd.Start(); err != nil {
 		t.Fatal(err)
