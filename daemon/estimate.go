@@ -113,7 +113,18 @@ type OutputEstimate struct {
 // numbers must not be mistaken for an estimate. "reinitialised": true marks
 // the tick on which the engine restarted the filter from the plant's initial
 // condition (DivergedHold ticks after it diverged).
-func (est *Estimate) AppendJSON(dst []byte) []byte {
+func (est *Estimate) AppendJSON(dst []byte) []byte { return est.AppendJSONWith(dst, nil) }
+
+// AppendJSONWith is AppendJSON with the numbers' text kept in c from one
+// call to the next: a number equal to the one written at the same place the
+// time before (a settled standard deviation, the NIS band, a held input) is
+// copied instead of formatted again. The output is the same byte for byte;
+// c nil formats every number. Give each stream of estimates (an estimator's
+// active or shadow estimates) its own cache.
+func (est *Estimate) AppendJSONWith(dst []byte, c *NumberCache) []byte {
+	if c != nil {
+		c.next = 0
+	}
 	dst = append(dst, `{"estimator":`...)
 	dst = appendString(dst, est.Estimator)
 	dst = append(dst, `,"instance":`...)
@@ -146,9 +157,9 @@ func (est *Estimate) AppendJSON(dst []byte) []byte {
 		}
 		dst = appendString(dst, s.Name)
 		dst = append(dst, `:{"value":`...)
-		dst = appendFloat(dst, s.Value)
+		dst = c.appendFloat(dst, s.Value)
 		dst = append(dst, `,"std":`...)
-		dst = appendFloat(dst, s.Std)
+		dst = c.appendFloat(dst, s.Std)
 		dst = append(dst, `,"unit":`...)
 		dst = appendString(dst, s.Unit)
 		dst = append(dst, '}')
@@ -161,9 +172,9 @@ func (est *Estimate) AppendJSON(dst []byte) []byte {
 		}
 		dst = appendString(dst, in.Name)
 		dst = append(dst, `:{"value":`...)
-		dst = appendFloat(dst, in.Value)
+		dst = c.appendFloat(dst, in.Value)
 		dst = append(dst, `,"age":`...)
-		dst = appendFloat(dst, in.Age)
+		dst = c.appendFloat(dst, in.Age)
 		dst = append(dst, `,"stale":`...)
 		dst = strconv.AppendBool(dst, in.Stale)
 		dst = append(dst, `,"unit":`...)
@@ -178,15 +189,15 @@ func (est *Estimate) AppendJSON(dst []byte) []byte {
 		}
 		dst = appendString(dst, o.Name)
 		dst = append(dst, `:{"measured":`...)
-		dst = appendFloat(dst, o.Measured)
+		dst = c.appendFloat(dst, o.Measured)
 		dst = append(dst, `,"predicted":`...)
-		dst = appendFloat(dst, o.Predicted)
+		dst = c.appendFloat(dst, o.Predicted)
 		dst = append(dst, `,"innovation":`...)
-		dst = appendFloat(dst, o.Innovation)
+		dst = c.appendFloat(dst, o.Innovation)
 		dst = append(dst, `,"innovation_std":`...)
-		dst = appendFloat(dst, o.InnovationStd)
+		dst = c.appendFloat(dst, o.InnovationStd)
 		dst = append(dst, `,"age":`...)
-		dst = appendFloat(dst, o.Age)
+		dst = c.appendFloat(dst, o.Age)
 		dst = append(dst, `,"used":`...)
 		dst = strconv.AppendBool(dst, o.Used)
 		dst = append(dst, `,"outlier":`...)
@@ -196,15 +207,15 @@ func (est *Estimate) AppendJSON(dst []byte) []byte {
 		dst = append(dst, '}')
 	}
 	dst = append(dst, `},"nis":`...)
-	dst = appendFloat(dst, est.NIS)
+	dst = c.appendFloat(dst, est.NIS)
 	dst = append(dst, `,"dof":`...)
 	dst = strconv.AppendInt(dst, int64(est.Dof), 10)
 	dst = append(dst, `,"nis_mean":`...)
-	dst = appendFloat(dst, est.NISMean)
+	dst = c.appendFloat(dst, est.NISMean)
 	dst = append(dst, `,"nis_band":[`...)
-	dst = appendFloat(dst, est.NISBand[0])
+	dst = c.appendFloat(dst, est.NISBand[0])
 	dst = append(dst, ',')
-	dst = appendFloat(dst, est.NISBand[1])
+	dst = c.appendFloat(dst, est.NISBand[1])
 	dst = append(dst, "]}"...)
 	return dst
 }
@@ -217,13 +228,65 @@ func appendFloat(dst []byte, v float64) []byte {
 	return strconv.AppendFloat(dst, v, 'g', -1, 64)
 }
 
+// NumberCache keeps the text of the numbers of a stream of estimates for
+// [Estimate.AppendJSONWith]. The zero value is ready; it grows to the
+// estimates' size on first use and allocates nothing after. It is not safe
+// for concurrent use.
+type NumberCache struct {
+	next int      // place of the next number in this call
+	bits []uint64 // per place: the number last written there
+	n    []uint8  // per place: the length of its text, 0 when none yet
+	text []byte   // per place: numberWidth bytes holding the text
+}
+
+// numberWidth is room for the longest text appendFloat writes
+// ("-2.2250738585072014e-308").
+const numberWidth = 24
+
+// appendFloat is the package's appendFloat, through the cache when c is not
+// nil.
+func (c *NumberCache) appendFloat(dst []byte, v float64) []byte {
+	if c == nil {
+		return appendFloat(dst, v)
+	}
+	i := c.next
+	c.next++
+	if i == len(c.bits) {
+		c.bits = append(c.bits, 0)
+		c.n = append(c.n, 0)
+		c.text = append(c.text, make([]byte, numberWidth)...)
+	}
+	slot := c.text[i*numberWidth : (i+1)*numberWidth : (i+1)*numberWidth]
+	b := math.Float64bits(v)
+	if c.n[i] == 0 || c.bits[i] != b {
+		t := appendFloat(slot[:0], v)
+		if len(t) > numberWidth { // cannot happen; written directly if it did
+			c.n[i] = 0
+			return append(dst, t...)
+		}
+		c.bits[i], c.n[i] = b, uint8(len(t))
+	}
+	return append(dst, slot[:c.n[i]]...)
+}
+
 const hexDigits = "0123456789abcdef"
 
 // appendString writes s as a JSON string: quotes, backslashes and control
 // characters escaped, invalid UTF-8 replaced by U+FFFD, everything else as is.
 func appendString(dst []byte, s string) []byte {
 	dst = append(dst, '"')
-	for i := 0; i < len(s); {
+	// The names and units of a plant are mostly plain ASCII: copy the
+	// plain prefix at once.
+	plain := 0
+	for plain < len(s) {
+		c := s[plain]
+		if c < 0x20 || c == '"' || c == '\\' || c >= utf8.RuneSelf {
+			break
+		}
+		plain++
+	}
+	dst = append(dst, s[:plain]...)
+	for i := plain; i < len(s); {
 		c := s[i]
 		if c < utf8.RuneSelf {
 			switch {

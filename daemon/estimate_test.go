@@ -1,6 +1,7 @@
 package daemon
 
 import (
+	"bytes"
 	"encoding/json"
 	"math"
 	"testing"
@@ -163,4 +164,90 @@ func BenchmarkEstimateAppendJSON(b *testing.B) {
 		buf = est.AppendJSON(buf[:0])
 	}
 	b.SetBytes(int64(len(buf)))
+}
+
+// TestAppendJSONWithCache encodes the demo plant's estimates tick after tick
+// with and without a NumberCache: the two texts must be the same byte for
+// byte, whatever changes between ticks (measurements missing every third
+// tick, an outlier, a reset to a state far away), and the cached encoding
+// must allocate nothing once warm.
+func TestAppendJSONWithCache(t *testing.T) {
+	pl, gf := engDemoPlant(t)
+	e := NewEngine(pl, engPrepare(t, pl, gf, "kalman-current"), EngineOptions{})
+	est := e.NewEstimate()
+	var cache NumberCache
+	var plain, cached []byte
+	for k := range 300 {
+		tk := engAt(float64(k))
+		e.Offer(0, 6, tk, tk)
+		y := 61 + 0.01*float64(k%7)
+		if k == 150 {
+			y = 90 // an outlier
+		}
+		e.Offer(1, y, tk, tk)
+		if k%3 != 0 {
+			e.Offer(2, 54.4+0.001*float64(k%5), tk, tk)
+		}
+		if k == 200 {
+			e.enqueue(laneOp{kind: opReset, x: []float64{80, 70, 60, 0.5}})
+		}
+		e.Tick(tk, est)
+		plain = est.AppendJSON(plain[:0])
+		cached = est.AppendJSONWith(cached[:0], &cache)
+		if !bytes.Equal(plain, cached) {
+			t.Fatalf("tick %d: cached encoding differs:\n%s\nwant\n%s", k, cached, plain)
+		}
+	}
+	if n := testing.AllocsPerRun(100, func() { cached = est.AppendJSONWith(cached[:0], &cache) }); n != 0 {
+		t.Errorf("AppendJSONWith: %v allocations per call, want 0", n)
+	}
+}
+
+// FuzzNumberCache writes a sequence of numbers at two places through one
+// cache and checks each text against the uncached one.
+func FuzzNumberCache(f *testing.F) {
+	f.Add(1.5, 1.5, math.NaN(), -0.0, 0.0, math.Inf(1))
+	f.Add(-2.2250738585072014e-308, 1e21, 1e-7, 123456789.125, 0.1, 0.1)
+	f.Fuzz(func(t *testing.T, a, b, c, d, e, g float64) {
+		var cache NumberCache
+		vals := []float64{a, b, c, d, e, g}
+		for i := 0; i+1 < len(vals); i += 2 {
+			cache.next = 0
+			for _, v := range vals[i : i+2] {
+				got := cache.appendFloat(nil, v)
+				if want := appendFloat(nil, v); !bytes.Equal(got, want) {
+					t.Fatalf("cached text of %v is %q, want %q", v, got, want)
+				}
+			}
+		}
+	})
+}
+
+// BenchmarkTickAndEncode measures a tick of the demo plant and the
+// encoding of its estimate, with and without a NumberCache (the samples
+// change every tick, as on a plant).
+func BenchmarkTickAndEncode(b *testing.B) {
+	for _, withCache := range []bool{false, true} {
+		b.Run(map[bool]string{false: "plain", true: "cached"}[withCache], func(b *testing.B) {
+			pl, gf := engDemoPlant(b)
+			e := NewEngine(pl, engPrepare(b, pl, gf, "kalman-current"), EngineOptions{})
+			est := e.NewEstimate()
+			var cache *NumberCache
+			if withCache {
+				cache = &NumberCache{}
+			}
+			buf := make([]byte, 0, 4096)
+			b.ReportAllocs()
+			k := 0
+			for b.Loop() {
+				tk := engAt(float64(k))
+				e.Offer(0, 6, tk, tk)
+				e.Offer(1, 61+0.01*float64(k%7), tk, tk)
+				e.Offer(2, 54.4+0.001*float64(k%5), tk, tk)
+				e.Tick(tk, est)
+				buf = est.AppendJSONWith(buf[:0], cache)
+				k++
+			}
+		})
+	}
 }

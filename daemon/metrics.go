@@ -433,7 +433,21 @@ type GainsMetrics struct {
 	state, stateStddev               []prometheus.Gauge
 	series                           seriesList // every series above, and surmise_gains_info
 	form, fingerprint                string     // of the surmise_gains_info series set, if any
+
+	// The values last written to the sensor gauges of each output and to
+	// the NIS band (NaN never compares equal, so a NaN is written again).
+	sensorShown []struct {
+		v   [sensorGauges]float64
+		set bool
+	}
+	bandShown struct {
+		v   [2]float64
+		set bool
+	}
 }
+
+// sensorGauges is the number of gauges per output set by SetSensor.
+const sensorGauges = 5
 
 // Gains binds the series of the gain set named gains (for a shadow set, or
 // after a promotion). Value gauges start at NaN. At MetricsSummary, the
@@ -473,6 +487,10 @@ func (e *EstimatorMetrics) Gains(gains string) *GainsMetrics {
 		g.biasAlarms = append(g.biasAlarms, bind(own, m.biasAlarms, e.name, gains, o))
 		g.alarmsSeen = append(g.alarmsSeen, 0)
 	}
+	g.sensorShown = make([]struct {
+		v   [sensorGauges]float64
+		set bool
+	}, len(e.outputs))
 	for _, s := range e.states {
 		g.state = append(g.state, detail(m.state, e.name, gains, s))
 		g.stateStddev = append(g.stateStddev, detail(m.stateStddev, e.name, gains, s))
@@ -493,11 +511,17 @@ func (g *GainsMetrics) SetInnovation(i int, r, rms float64) {
 // SetSensor sets the fault indicators of output i from its sensor watch;
 // the bias-alarm counter advances by the alarms raised since the last call.
 func (g *GainsMetrics) SetSensor(i int, st *estimator.SensorState) {
-	g.bias[i].Set(float64(st.Bias))
-	g.cusum[i].Set(max(st.CUSUMHigh, st.CUSUMLow))
-	g.stuck[i].Set(b2f(st.Stuck))
-	g.locked[i].Set(b2f(st.LockedOut))
-	g.drop[i].Set(st.Dropout)
+	// Most of these hold still from tick to tick: a gauge is written only
+	// when its value changed, which spares the tick a cache miss per gauge
+	// when thousands of estimators share the process.
+	v := [sensorGauges]float64{float64(st.Bias), max(st.CUSUMHigh, st.CUSUMLow), b2f(st.Stuck), b2f(st.LockedOut), st.Dropout}
+	shown := &g.sensorShown[i]
+	for k, gauge := range [sensorGauges][]prometheus.Gauge{g.bias, g.cusum, g.stuck, g.locked, g.drop} {
+		if !shown.set || v[k] != shown.v[k] {
+			gauge[i].Set(v[k])
+		}
+	}
+	shown.v, shown.set = v, true
 	if d := st.BiasAlarms - g.alarmsSeen[i]; d > 0 {
 		g.biasAlarms[i].Add(float64(d))
 	}
@@ -519,8 +543,12 @@ func (g *GainsMetrics) SetNIS(last, windowMean float64, outOfBand bool) {
 
 // SetNISBand sets the 95 % band of the windowed mean NIS.
 func (g *GainsMetrics) SetNISBand(lower, upper float64) {
+	if g.bandShown.set && g.bandShown.v == [2]float64{lower, upper} {
+		return // a full window's band holds still
+	}
 	g.nisLower.Set(lower)
 	g.nisUpper.Set(upper)
+	g.bandShown.v, g.bandShown.set = [2]float64{lower, upper}, true
 }
 
 // SetStates sets the estimated states (absolute values) and their standard

@@ -2,7 +2,9 @@ package daemon
 
 import (
 	"fmt"
+	"math"
 	"strings"
+	"surmise/estimator"
 	"testing"
 	"time"
 
@@ -320,5 +322,42 @@ func TestFreshEstimatorLastReloadSucceeded(t *testing.T) {
 	}
 	if v := testutil.ToFloat64(m.reloads.WithLabelValues("loop", "refused")); v != 0 {
 		t.Errorf("refused reloads of a fresh estimator = %v, want 0", v)
+	}
+}
+
+// TestMetricsSetOnlyChanges checks that the gauges written only on a change
+// (sensor indicators, NIS band) still follow every change, NaN included.
+func TestMetricsSetOnlyChanges(t *testing.T) {
+	_, m, e := newTestMetrics(t)
+	g := e.Primary()
+	steps := []struct {
+		st     estimator.SensorState
+		lo, hi float64
+	}{
+		{estimator.SensorState{CUSUMHigh: 2, Dropout: 0.1}, 0.5, 1.5},
+		{estimator.SensorState{CUSUMHigh: 2, Dropout: 0.1}, 0.5, 1.5}, // unchanged
+		{estimator.SensorState{CUSUMLow: 12, Bias: -1, Stuck: true, LockedOut: true, Dropout: 0.1}, 0.6, 1.4},
+		{estimator.SensorState{Dropout: math.NaN()}, math.NaN(), 1.4},
+		{estimator.SensorState{}, 0.6, 1.4},
+	}
+	same := func(a, b float64) bool { return a == b || math.IsNaN(a) && math.IsNaN(b) }
+	for k, s := range steps {
+		g.SetSensor(1, &s.st)
+		g.SetNISBand(s.lo, s.hi)
+		got := []float64{
+			testutil.ToFloat64(m.sensorBias.WithLabelValues("loop", "kalman", "t_hx")),
+			testutil.ToFloat64(m.sensorCUSUM.WithLabelValues("loop", "kalman", "t_hx")),
+			testutil.ToFloat64(m.sensorStuck.WithLabelValues("loop", "kalman", "t_hx")),
+			testutil.ToFloat64(m.lockedOut.WithLabelValues("loop", "kalman", "t_hx")),
+			testutil.ToFloat64(m.dropout.WithLabelValues("loop", "kalman", "t_hx")),
+			testutil.ToFloat64(m.nisLower.WithLabelValues("loop", "kalman")),
+			testutil.ToFloat64(m.nisUpper.WithLabelValues("loop", "kalman")),
+		}
+		want := []float64{float64(s.st.Bias), max(s.st.CUSUMHigh, s.st.CUSUMLow), b2f(s.st.Stuck), b2f(s.st.LockedOut), s.st.Dropout, s.lo, s.hi}
+		for i := range want {
+			if !same(got[i], want[i]) {
+				t.Errorf("step %d: gauge %d is %v, want %v", k, i, got[i], want[i])
+			}
+		}
 	}
 }

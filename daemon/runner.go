@@ -51,7 +51,8 @@ type Estimator struct {
 	// Touched by its ticks only (the ticks of one job never overlap).
 	est       *Estimate
 	payload   []byte
-	lastReady int8 // the ready gauge as last set: -1 never, 0, 1
+	numbers   NumberCache // the text of the payload's numbers, tick to tick
+	lastReady int8        // the ready gauge as last set: -1 never, 0, 1
 
 	comm   *Commissioner // reloads, shadow, promotion (reload.go)
 	shadow shadowLane    // the candidate's estimate, tick only (shadow.go)
@@ -193,7 +194,7 @@ func (e *Estimator) logHeldRefusals() {
 func (e *Estimator) tick(t Tick) {
 	d := e.d
 	e.engine.Tick(t.Due, e.est)
-	e.payload = e.est.AppendJSON(e.payload[:0])
+	e.payload = e.est.AppendJSONWith(e.payload[:0], &e.numbers)
 	var ours bool
 	if e.fleet != nil {
 		ours = e.fleetTick() // every tick: it also checkpoints

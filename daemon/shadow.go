@@ -139,6 +139,7 @@ type shadowLane struct {
 	subject string
 	est     *Estimate
 	payload []byte
+	numbers NumberCache
 }
 
 // afterTick publishes the candidate lane's estimate of the tick just run on
@@ -150,7 +151,7 @@ func (e *Estimator) afterTick(connected bool) {
 	if e.shadow.est != nil && e.engine.CandidateTo(e.shadow.est) {
 		cand = e.shadow.est
 		if connected {
-			e.shadow.payload = cand.AppendJSON(e.shadow.payload[:0])
+			e.shadow.payload = cand.AppendJSONWith(e.shadow.payload[:0], &e.shadow.numbers)
 			_ = e.d.bus.Conn().Publish(e.shadow.subject, e.shadow.payload)
 		}
 	}
