@@ -345,21 +345,38 @@ func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, cou
 	for i, e := range r.d.Estimators() {
 		index[e] = i
 	}
-	var ticks, missed atomic.Int64
-	var byStatus [4]atomic.Int64 // tracking, coasting, stale-input, suspect (daemon.Status order)
-	tracked := make([]atomic.Bool, count)
-	perEst := make([]atomic.Int64, count)
+	// Each estimator counts in its own cache lines: shared counters,
+	// bumped by both tick workers 10,000 times a second, would bounce
+	// between the cores and be measured with the daemon.
+	type counts struct {
+		ticks, missed atomic.Int64
+		status        [4]atomic.Int64 // tracking, coasting, stale-input, suspect (daemon.Status order)
+		tracked       atomic.Bool
+		_             [64]byte
+	}
+	per := make([]counts, count)
 	remove := r.d.OnEstimate(func(e *daemon.Estimator, est *daemon.Estimate, _ []byte) {
-		ticks.Add(1)
-		perEst[index[e]].Add(1)
-		missed.Add(int64(e.Timing().Missed))
-		if int(est.Status) < len(byStatus) {
-			byStatus[est.Status].Add(1)
+		c := &per[index[e]]
+		c.ticks.Add(1)
+		c.missed.Add(int64(e.Timing().Missed))
+		if int(est.Status) < len(c.status) {
+			c.status[est.Status].Add(1)
 		}
 		if est.Status == daemon.StatusTracking {
-			tracked[index[e]].Store(true)
+			c.tracked.Store(true)
 		}
 	})
+	// totals returns the ticks, missed ticks and ticks by status so far.
+	totals := func() (ticks, missed int64, byStatus [4]int64) {
+		for i := range per {
+			ticks += per[i].ticks.Load()
+			missed += per[i].missed.Load()
+			for k := range byStatus {
+				byStatus[k] += per[i].status[k].Load()
+			}
+		}
+		return ticks, missed, byStatus
+	}
 	defer remove()
 
 	gen := exec.Command(os.Args[0], "-test.run=^TestLoadGenerator$", "-test.v")
@@ -378,11 +395,11 @@ func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, cou
 	// there: the window is then measured anyway, and the report says so.
 	settled := func() error {
 		n, full := 0, 0
-		for i := range tracked {
-			if tracked[i].Load() {
+		for i := range per {
+			if per[i].tracked.Load() {
 				n++
 			}
-			if perEst[i].Load() > config.DefaultWindow+10 {
+			if per[i].ticks.Load() > config.DefaultWindow+10 {
 				full++
 			}
 		}
@@ -404,11 +421,7 @@ func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, cou
 	var ms runtime.MemStats
 	runtime.ReadMemStats(&ms)
 	gc0 := ms.NumGC
-	var st0 [4]int64
-	for i := range byStatus {
-		st0[i] = byStatus[i].Load()
-	}
-	ticks0, missed0 := ticks.Load(), missed.Load()
+	ticks0, missed0, st0 := totals()
 	stopProfile := profileWindow(t, count)
 	var serverCPU0, serverCPU1 time.Duration
 	if server != nil {
@@ -421,10 +434,10 @@ func measureScale(t *testing.T, md *estimator.Model, set *estimator.GainSet, cou
 		serverCPU1 = processCPU(t, server.cmd.Process.Pid)
 	}
 	stopProfile()
-	ticks1, missed1 := ticks.Load(), missed.Load()
+	ticks1, missed1, st1 := totals()
 	var statuses []string
-	for i := range byStatus {
-		statuses = append(statuses, fmt.Sprintf("%s %d", daemon.Status(i), byStatus[i].Load()-st0[i]))
+	for i := range st1 {
+		statuses = append(statuses, fmt.Sprintf("%s %d", daemon.Status(i), st1[i]-st0[i]))
 	}
 	runtime.ReadMemStats(&ms)
 	gcs := ms.NumGC - gc0
