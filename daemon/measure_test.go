@@ -572,3 +572,57 @@ func TestLoadGenerator(t *testing.T) {
 		}
 	}
 }
+
+// BenchmarkEngineRoundRobin ticks the engines of 1 and of 1,000 plants of
+// the scale model in turn, each tick with its five samples and the JSON
+// encoding of its estimate, as a process of many estimators does: between
+// two ticks of one engine, 999 others have run, so its data is no longer in
+// the caches. The gap between the two sizes is the cost of those cache
+// misses, which dominates a tick at scale.
+func BenchmarkEngineRoundRobin(b *testing.B) {
+	const ts = 100 * time.Millisecond
+	md, set := scaleModel(b, ts)
+	for _, n := range []int{1, 1000} {
+		b.Run(strconv.Itoa(n), func(b *testing.B) {
+			type one struct {
+				e     *daemon.Engine
+				est   *daemon.Estimate
+				buf   []byte
+				cache daemon.NumberCache
+			}
+			engines := make([]one, n)
+			for i, s := range scalePlants(md, set, n, ts) {
+				p, err := estimator.Prepare(md, set, s.Plant.Gate)
+				if err != nil {
+					b.Fatal(err)
+				}
+				e := daemon.NewEngine(s.Plant, p, daemon.EngineOptions{})
+				engines[i] = one{e: e, est: e.NewEstimate(), buf: make([]byte, 0, 4096)}
+			}
+			sim := estimator.NewPlant(md, 1, nil)
+			u, y := []float64{0.3, -0.2, 0.1}, make([]float64, 2)
+			t0 := time.Date(2026, 1, 1, 0, 0, 0, 0, time.UTC)
+			k := 0
+			step := func() {
+				o := &engines[k%n]
+				sim.Step(u) // every tick at both sizes, so the two cost the same work
+				sim.OutputTo(y)
+				at := t0.Add(time.Duration(k/n) * ts)
+				for j, v := range [5]float64{u[0], u[1], u[2], y[0], y[1]} {
+					o.e.Offer(j, v, at, at)
+				}
+				o.e.Tick(at, o.est)
+				o.buf = o.est.AppendJSONWith(o.buf[:0], &o.cache)
+				k++
+			}
+			for range 300 * n { // past the NIS window and the acquisition
+				step()
+			}
+			b.ReportAllocs()
+			b.ResetTimer()
+			for b.Loop() {
+				step()
+			}
+		})
+	}
+}
