@@ -35,8 +35,14 @@ func (f *Filter) SaveTo(s *FilterState) {
 	copy(s.x, f.x)
 	copy(s.pend, f.pend)
 	copy(s.uPrev, f.uPrev)
-	copy(s.P, f.P)
-	copy(s.pnext, f.pnext)
+	// A settled filter's P is exactly its set's steady state (setPub,
+	// copied in when it settled and untouched until it leaves), and it has
+	// no next P: there is nothing to keep, and the two n×n copies, the
+	// bulk of a save, are spared on every steady tick.
+	if !f.settled {
+		copy(s.P, f.P)
+		copy(s.pnext, f.pnext)
+	}
 	s.hasP, s.first, s.acq, s.settled, s.hasNext = f.hasP, f.first, f.acq, f.settled, f.hasNext
 	s.rejected = f.rejected
 }
@@ -52,8 +58,12 @@ func (f *Filter) RestoreFrom(s *FilterState) {
 	copy(f.x, s.x)
 	copy(f.pend, s.pend)
 	copy(f.uPrev, s.uPrev)
-	copy(f.P, s.P)
-	copy(f.pnext, s.pnext)
+	if s.settled {
+		copy(f.P, f.pr.setPub)
+	} else {
+		copy(f.P, s.P)
+		copy(f.pnext, s.pnext)
+	}
 	f.hasP, f.first, f.acq, f.settled, f.hasNext = s.hasP, s.first, s.acq, s.settled, s.hasNext
 	f.rejected = s.rejected
 	f.svOK, f.svGain = false, nil

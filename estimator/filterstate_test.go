@@ -74,3 +74,63 @@ func TestFilterStateRerun(t *testing.T) {
 		})
 	}
 }
+
+// TestFilterStateSettled saves a settled tracked filter (whose P is not
+// copied: it is the set's steady state), lets it leave the steady state on a
+// missing output, restores the save and re-runs: estimates and covariances
+// are bit for bit those of the first pass.
+func TestFilterStateSettled(t *testing.T) {
+	md := threeModel()
+	_, post, s, kc := refRiccati(md.A, md.C, md.Q, md.R, 300)
+	set := &GainSet{Name: "cur", Form: Current, Gains: []PatternGain{{Outputs: 3, L: kc, S: symOf(s), P: symOf(post)}}}
+	f := NewFilter(mustPrepare(t, md, set, 0.99), nil, nil) // tracked, no p0: starts settled
+	pl := NewPlant(md, 4, nil)
+	const ticks, saveAt, gapAt = 40, 10, 15
+	us, ys := make([][]float64, ticks), make([][]float64, ticks)
+	xs, ps := make([][]float64, ticks), make([]*mat.SymDense, ticks)
+	saved := f.NewState()
+	for k := range ticks {
+		us[k] = []float64{10 + math.Sin(0.1*float64(k))}
+		pl.Step(us[k])
+		ys[k] = make([]float64, 2)
+		pl.OutputTo(ys[k])
+		if k == saveAt {
+			if !f.settled {
+				t.Fatalf("tick %d: the filter is not settled; the test needs it to be", k)
+			}
+			f.SaveTo(saved)
+		}
+		pat := Pattern(3)
+		if k == gapAt {
+			pat = 1
+		}
+		f.Step(us[k], ys[k], pat)
+		if k == gapAt && f.settled {
+			t.Fatal("still settled after a missing output; the test needs it to leave")
+		}
+		xs[k] = make([]float64, 3)
+		f.StateTo(xs[k])
+		ps[k] = &mat.SymDense{}
+		f.CovarianceTo(ps[k])
+	}
+	f.RestoreFrom(saved)
+	x := make([]float64, 3)
+	var p mat.SymDense
+	for k := saveAt; k < ticks; k++ {
+		pat := Pattern(3)
+		if k == gapAt {
+			pat = 1
+		}
+		f.Step(us[k], ys[k], pat)
+		f.StateTo(x)
+		f.CovarianceTo(&p)
+		for i := range x {
+			if x[i] != xs[k][i] {
+				t.Fatalf("tick %d: x̂[%d] = %v on the re-run, %v the first time", k, i, x[i], xs[k][i])
+			}
+		}
+		if !mat.Equal(&p, ps[k]) {
+			t.Fatalf("tick %d: P differs on the re-run", k)
+		}
+	}
+}
