@@ -52,20 +52,9 @@ func TestFilterStateRerun(t *testing.T) {
 				f.CovarianceTo(ps[k])
 			}
 			f.RestoreFrom(states[20])
-			x := make([]float64, 3)
-			var p mat.SymDense
 			for k := 20; k < ticks; k++ {
 				f.Step(us[k], ys[k], pats[k])
-				f.StateTo(x)
-				f.CovarianceTo(&p)
-				for i := range x {
-					if x[i] != xs[k][i] {
-						t.Fatalf("tick %d: x̂[%d] = %v on the re-run, %v the first time", k, i, x[i], xs[k][i])
-					}
-				}
-				if !mat.Equal(&p, ps[k]) {
-					t.Fatalf("tick %d: P differs on the re-run", k)
-				}
+				sameAsFirstPass(t, f, k, xs[k], ps[k])
 			}
 			st := f.NewState()
 			if a := testing.AllocsPerRun(20, func() { f.SaveTo(st); f.RestoreFrom(st) }); a != 0 {
@@ -114,23 +103,30 @@ func TestFilterStateSettled(t *testing.T) {
 		f.CovarianceTo(ps[k])
 	}
 	f.RestoreFrom(saved)
-	x := make([]float64, 3)
-	var p mat.SymDense
 	for k := saveAt; k < ticks; k++ {
 		pat := Pattern(3)
 		if k == gapAt {
 			pat = 1
 		}
 		f.Step(us[k], ys[k], pat)
-		f.StateTo(x)
-		f.CovarianceTo(&p)
-		for i := range x {
-			if x[i] != xs[k][i] {
-				t.Fatalf("tick %d: x̂[%d] = %v on the re-run, %v the first time", k, i, x[i], xs[k][i])
-			}
+		sameAsFirstPass(t, f, k, xs[k], ps[k])
+	}
+}
+
+// sameAsFirstPass fails the test unless f's state and covariance after tick
+// k of a re-run are bit for bit x and p, those of the first pass.
+func sameAsFirstPass(t *testing.T, f *Filter, k int, x []float64, p *mat.SymDense) {
+	t.Helper()
+	got := make([]float64, len(x))
+	f.StateTo(got)
+	for i := range x {
+		if got[i] != x[i] {
+			t.Fatalf("tick %d: x̂[%d] = %v on the re-run, %v the first time", k, i, got[i], x[i])
 		}
-		if !mat.Equal(&p, ps[k]) {
-			t.Fatalf("tick %d: P differs on the re-run", k)
-		}
+	}
+	var gp mat.SymDense
+	f.CovarianceTo(&gp)
+	if !mat.Equal(&gp, p) {
+		t.Fatalf("tick %d: P differs on the re-run", k)
 	}
 }
