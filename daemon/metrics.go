@@ -425,7 +425,7 @@ type GainsMetrics struct {
 	gains                            string
 	innovation, innovationRMS        []prometheus.Gauge
 	outliers                         []prometheus.Counter
-	bias, cusum, stuck, locked, drop []prometheus.Gauge
+	sensor                           []sensorSeries // per output
 	biasAlarms                       []prometheus.Counter
 	alarmsSeen                       []int
 	nis, nisMean, nisLower, nisUpper prometheus.Gauge
@@ -434,12 +434,8 @@ type GainsMetrics struct {
 	series                           seriesList // every series above, and surmise_gains_info
 	form, fingerprint                string     // of the surmise_gains_info series set, if any
 
-	// The values last written to the sensor gauges of each output and to
-	// the NIS band (NaN never compares equal, so a NaN is written again).
-	sensorShown []struct {
-		v   [sensorGauges]float64
-		set bool
-	}
+	// The values last written to the NIS band (NaN never compares equal,
+	// so a NaN is written again).
 	bandShown struct {
 		v   [2]float64
 		set bool
@@ -448,6 +444,14 @@ type GainsMetrics struct {
 
 // sensorGauges is the number of gauges per output set by SetSensor.
 const sensorGauges = 5
+
+// sensorSeries are the sensor gauges of one output (bias, CUSUM, stuck,
+// locked out, drop-out) and the values last written to them.
+type sensorSeries struct {
+	gauges [sensorGauges]prometheus.Gauge
+	shown  [sensorGauges]float64
+	set    bool
+}
 
 // Gains binds the series of the gain set named gains (for a shadow set, or
 // after a promotion). Value gauges start at NaN. At MetricsSummary, the
@@ -479,18 +483,14 @@ func (e *EstimatorMetrics) Gains(gains string) *GainsMetrics {
 		} else {
 			g.outliers = append(g.outliers, m.outliers.WithLabelValues("", "", ""))
 		}
-		g.bias = append(g.bias, bind(own, m.sensorBias, e.name, gains, o))
-		g.cusum = append(g.cusum, bind(own, m.sensorCUSUM, e.name, gains, o))
-		g.stuck = append(g.stuck, bind(own, m.sensorStuck, e.name, gains, o))
-		g.locked = append(g.locked, bind(own, m.lockedOut, e.name, gains, o))
-		g.drop = append(g.drop, bind(own, m.dropout, e.name, gains, o))
+		var ss sensorSeries
+		for k, v := range [sensorGauges]*prometheus.GaugeVec{m.sensorBias, m.sensorCUSUM, m.sensorStuck, m.lockedOut, m.dropout} {
+			ss.gauges[k] = bind(own, v, e.name, gains, o)
+		}
+		g.sensor = append(g.sensor, ss)
 		g.biasAlarms = append(g.biasAlarms, bind(own, m.biasAlarms, e.name, gains, o))
 		g.alarmsSeen = append(g.alarmsSeen, 0)
 	}
-	g.sensorShown = make([]struct {
-		v   [sensorGauges]float64
-		set bool
-	}, len(e.outputs))
 	for _, s := range e.states {
 		g.state = append(g.state, detail(m.state, e.name, gains, s))
 		g.stateStddev = append(g.stateStddev, detail(m.stateStddev, e.name, gains, s))
@@ -515,13 +515,13 @@ func (g *GainsMetrics) SetSensor(i int, st *estimator.SensorState) {
 	// when its value changed, which spares the tick a cache miss per gauge
 	// when thousands of estimators share the process.
 	v := [sensorGauges]float64{float64(st.Bias), max(st.CUSUMHigh, st.CUSUMLow), b2f(st.Stuck), b2f(st.LockedOut), st.Dropout}
-	shown := &g.sensorShown[i]
-	for k, gauge := range [sensorGauges][]prometheus.Gauge{g.bias, g.cusum, g.stuck, g.locked, g.drop} {
-		if !shown.set || v[k] != shown.v[k] {
-			gauge[i].Set(v[k])
+	ss := &g.sensor[i]
+	for k := range v {
+		if !ss.set || v[k] != ss.shown[k] {
+			ss.gauges[k].Set(v[k])
 		}
 	}
-	shown.v, shown.set = v, true
+	ss.shown, ss.set = v, true
 	if d := st.BiasAlarms - g.alarmsSeen[i]; d > 0 {
 		g.biasAlarms[i].Add(float64(d))
 	}
