@@ -240,11 +240,7 @@ func BenchmarkTickAndEncode(b *testing.B) {
 			b.ReportAllocs()
 			k := 0
 			for b.Loop() {
-				tk := engAt(float64(k))
-				e.Offer(0, 6, tk, tk)
-				e.Offer(1, 61+0.01*float64(k%7), tk, tk)
-				e.Offer(2, 54.4+0.001*float64(k%5), tk, tk)
-				e.Tick(tk, est)
+				e.Tick(engDemoOffer(e, k), est)
 				buf = est.AppendJSONWith(buf[:0], cache)
 				k++
 			}
